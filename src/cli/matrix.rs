@@ -1,0 +1,17 @@
+//! `modegram matrix`.
+use super::{Common, Outcome};
+use crate::error::Result;
+use clap::Args;
+use std::path::PathBuf;
+
+#[derive(Debug, Args)]
+pub struct MatrixArgs {
+    /// The setup file (TOML).
+    pub setup: PathBuf,
+    #[command(flatten)]
+    pub common: Common,
+}
+
+pub fn run(_args: &MatrixArgs) -> Result<Outcome> {
+    Err(super::unavailable("matrix"))
+}

@@ -1,0 +1,17 @@
+//! `modegram modes`.
+use super::{Common, Outcome};
+use crate::error::Result;
+use clap::Args;
+use std::path::PathBuf;
+
+#[derive(Debug, Args)]
+pub struct ModesArgs {
+    /// The setup file (TOML).
+    pub setup: PathBuf,
+    #[command(flatten)]
+    pub common: Common,
+}
+
+pub fn run(_args: &ModesArgs) -> Result<Outcome> {
+    Err(super::unavailable("modes"))
+}

@@ -1,0 +1,1 @@
+//! modes stage (in progress).

@@ -1,0 +1,1 @@
+//! Overlap integrals of decoded fields with a sampled basis.
