@@ -29,10 +29,7 @@ impl Grid {
             nx,
             ny,
             pitch_um,
-            origin_um: [
-                -((nx / 2) as f64) * pitch_um,
-                -((ny / 2) as f64) * pitch_um,
-            ],
+            origin_um: [-((nx / 2) as f64) * pitch_um, -((ny / 2) as f64) * pitch_um],
         }
     }
 
@@ -102,7 +99,10 @@ impl Alignment {
         let (s, c) = self.rotation_deg.to_radians().sin_cos();
         let dx = x_um - self.center_um[0];
         let dy = y_um - self.center_um[1];
-        ((c * dx + s * dy) / self.scale, (-s * dx + c * dy) / self.scale)
+        (
+            (c * dx + s * dy) / self.scale,
+            (-s * dx + c * dy) / self.scale,
+        )
     }
 
     /// Inverse of [`Alignment::to_fibre`]: fibre coordinates (u, v) to grid position (x, y).

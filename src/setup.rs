@@ -407,13 +407,23 @@ impl Setup {
         let f = self.file_name();
         let f = f.as_str();
         if self.version != 1 {
-            return Err(Error::setup(f, "version", self.version, "only version 1 is known"));
+            return Err(Error::setup(
+                f,
+                "version",
+                self.version,
+                "only version 1 is known",
+            ));
         }
         finite_positive(f, "light.wavelength_nm", self.light.wavelength_nm)?;
         finite_positive(f, "camera.pixel_pitch_um", self.camera.pixel_pitch_um)?;
         let ff = self.camera.fill_factor;
         if !(ff.is_finite() && ff > 0.0 && ff <= 1.0) {
-            return Err(Error::setup(f, "camera.fill_factor", ff, "must be in (0, 1]"));
+            return Err(Error::setup(
+                f,
+                "camera.fill_factor",
+                ff,
+                "must be in (0, 1]",
+            ));
         }
         if let Some(sat) = self.camera.saturation_counts {
             finite_positive(f, "camera.saturation_counts", sat)?;
@@ -443,31 +453,65 @@ impl Setup {
             finite_positive(f, &k("scale"), ch.scale)?;
             if let AutoOr::Auto(s) = &ch.carrier {
                 if s != "auto" {
-                    return Err(Error::setup(f, k("carrier"), format!("{s:?}"), "must be \"auto\" or [fx, fy] in cycles per pixel"));
+                    return Err(Error::setup(
+                        f,
+                        k("carrier"),
+                        format!("{s:?}"),
+                        "must be \"auto\" or [fx, fy] in cycles per pixel",
+                    ));
                 }
             }
             if let AutoOr::Auto(s) = &ch.window_radius {
                 if s != "auto" {
-                    return Err(Error::setup(f, k("window_radius"), format!("{s:?}"), "must be \"auto\" or a radius in cycles per pixel"));
+                    return Err(Error::setup(
+                        f,
+                        k("window_radius"),
+                        format!("{s:?}"),
+                        "must be \"auto\" or a radius in cycles per pixel",
+                    ));
                 }
             }
             if ch.carrier_period_px.is_some() != ch.carrier_angle_deg.is_some() {
-                return Err(Error::setup(f, k("carrier_period_px"), format!("{:?}", ch.carrier_period_px), "give carrier_period_px and carrier_angle_deg together"));
+                return Err(Error::setup(
+                    f,
+                    k("carrier_period_px"),
+                    format!("{:?}", ch.carrier_period_px),
+                    "give carrier_period_px and carrier_angle_deg together",
+                ));
             }
             if let Some(p) = ch.carrier_period_px {
                 if !(p.is_finite() && p >= 2.0) {
-                    return Err(Error::setup(f, k("carrier_period_px"), p, "must be at least 2 pixels per fringe (Nyquist)"));
+                    return Err(Error::setup(
+                        f,
+                        k("carrier_period_px"),
+                        p,
+                        "must be at least 2 pixels per fringe (Nyquist)",
+                    ));
                 }
             }
             if let Some(c) = ch.carrier_cycles_per_px() {
                 let r = (c[0] * c[0] + c[1] * c[1]).sqrt();
-                if !(c[0].is_finite() && c[1].is_finite()) || c[0].abs() > 0.5 || c[1].abs() > 0.5 || r == 0.0 {
-                    return Err(Error::setup(f, k("carrier"), format!("{c:?}"), "each component must be in [-0.5, 0.5] cycles per pixel and not both 0"));
+                if !(c[0].is_finite() && c[1].is_finite())
+                    || c[0].abs() > 0.5
+                    || c[1].abs() > 0.5
+                    || r == 0.0
+                {
+                    return Err(Error::setup(
+                        f,
+                        k("carrier"),
+                        format!("{c:?}"),
+                        "each component must be in [-0.5, 0.5] cycles per pixel and not both 0",
+                    ));
                 }
             }
             if let Some(w) = ch.window_radius.value() {
                 if !(w.is_finite() && w > 0.0 && w < 0.5) {
-                    return Err(Error::setup(f, k("window_radius"), w, "must be in (0, 0.5) cycles per pixel"));
+                    return Err(Error::setup(
+                        f,
+                        k("window_radius"),
+                        w,
+                        "must be in (0, 0.5) cycles per pixel",
+                    ));
                 }
             }
             for (key, v) in [
@@ -485,20 +529,40 @@ impl Setup {
         }
         let l = &self.launch;
         if l.polarizations.is_empty() {
-            return Err(Error::setup(f, "launch.polarizations", "[]", "name at least one input polarisation"));
+            return Err(Error::setup(
+                f,
+                "launch.polarizations",
+                "[]",
+                "name at least one input polarisation",
+            ));
         }
         if l.repeats == 0 {
             return Err(Error::setup(f, "launch.repeats", 0, "must be at least 1"));
         }
         if !(l.power_counts.is_finite() && l.power_counts >= 0.0) {
-            return Err(Error::setup(f, "launch.power_counts", l.power_counts, "must be >= 0 (0: relative insertion loss)"));
+            return Err(Error::setup(
+                f,
+                "launch.power_counts",
+                l.power_counts,
+                "must be >= 0 (0: relative insertion loss)",
+            ));
         }
         let d = &self.decode;
         if !(d.dc_exclusion.is_finite() && d.dc_exclusion > 0.0 && d.dc_exclusion < 0.5) {
-            return Err(Error::setup(f, "decode.dc_exclusion", d.dc_exclusion, "must be in (0, 0.5) cycles per pixel"));
+            return Err(Error::setup(
+                f,
+                "decode.dc_exclusion",
+                d.dc_exclusion,
+                "must be in (0, 0.5) cycles per pixel",
+            ));
         }
         if !(d.window_edge.is_finite() && (0.0..=1.0).contains(&d.window_edge)) {
-            return Err(Error::setup(f, "decode.window_edge", d.window_edge, "must be in [0, 1]"));
+            return Err(Error::setup(
+                f,
+                "decode.window_edge",
+                d.window_edge,
+                "must be in [0, 1]",
+            ));
         }
         if let Some(g) = d.grid_px {
             if g < 8 {
@@ -506,7 +570,12 @@ impl Setup {
             }
         }
         if d.carrier_frames == 0 {
-            return Err(Error::setup(f, "decode.carrier_frames", 0, "must be at least 1"));
+            return Err(Error::setup(
+                f,
+                "decode.carrier_frames",
+                0,
+                "must be at least 1",
+            ));
         }
         Ok(())
     }
@@ -515,46 +584,103 @@ impl Setup {
         let fb = &self.fiber;
         let n2 = fb.cladding_index;
         if !(n2.is_finite() && n2 >= 1.0) {
-            return Err(Error::setup(f, "fiber.cladding_index", n2, "must be a finite index >= 1"));
+            return Err(Error::setup(
+                f,
+                "fiber.cladding_index",
+                n2,
+                "must be a finite index >= 1",
+            ));
         }
         if fb.profile != ProfileKind::Table {
             match fb.core_radius_um {
-                None => return Err(Error::setup(f, "fiber.core_radius_um", "(missing)", "required for step and graded profiles")),
+                None => {
+                    return Err(Error::setup(
+                        f,
+                        "fiber.core_radius_um",
+                        "(missing)",
+                        "required for step and graded profiles",
+                    ))
+                }
                 Some(a) => finite_positive(f, "fiber.core_radius_um", a)?,
             }
             match (fb.na, fb.core_index) {
                 (Some(_), Some(_)) => {
-                    return Err(Error::setup(f, "fiber.na", fb.na.unwrap(), "give na or core_index, not both"))
+                    return Err(Error::setup(
+                        f,
+                        "fiber.na",
+                        fb.na.unwrap(),
+                        "give na or core_index, not both",
+                    ))
                 }
                 (None, None) => {
-                    return Err(Error::setup(f, "fiber.na", "(missing)", "give na or core_index"))
+                    return Err(Error::setup(
+                        f,
+                        "fiber.na",
+                        "(missing)",
+                        "give na or core_index",
+                    ))
                 }
                 (Some(na), None) => {
                     finite_positive(f, "fiber.na", na)?;
                     if na >= n2 {
-                        return Err(Error::setup(f, "fiber.na", na, format!("must be below the cladding index {n2} (weak guidance)")));
+                        return Err(Error::setup(
+                            f,
+                            "fiber.na",
+                            na,
+                            format!("must be below the cladding index {n2} (weak guidance)"),
+                        ));
                     }
                 }
                 (None, Some(n1)) => {
                     if !(n1.is_finite() && n1 > n2) {
-                        return Err(Error::setup(f, "fiber.core_index", n1, format!("must exceed the cladding index {n2}")));
+                        return Err(Error::setup(
+                            f,
+                            "fiber.core_index",
+                            n1,
+                            format!("must exceed the cladding index {n2}"),
+                        ));
                     }
                 }
             }
         } else if fb.table.is_none() {
-            return Err(Error::setup(f, "fiber.table", "(missing)", "profile = \"table\" needs a table file (CSV: radius_um,index)"));
+            return Err(Error::setup(
+                f,
+                "fiber.table",
+                "(missing)",
+                "profile = \"table\" needs a table file (CSV: radius_um,index)",
+            ));
         }
         if fb.profile == ProfileKind::Graded && !(fb.alpha.is_finite() && fb.alpha > 0.0) {
-            return Err(Error::setup(f, "fiber.alpha", fb.alpha, "must be a finite exponent > 0"));
+            return Err(Error::setup(
+                f,
+                "fiber.alpha",
+                fb.alpha,
+                "must be a finite exponent > 0",
+            ));
         }
         if fb.solver_points_per_radius < 20 {
-            return Err(Error::setup(f, "fiber.solver_points_per_radius", fb.solver_points_per_radius, "must be at least 20"));
+            return Err(Error::setup(
+                f,
+                "fiber.solver_points_per_radius",
+                fb.solver_points_per_radius,
+                "must be at least 20",
+            ));
         }
         if !(fb.solver_extent_radii.is_finite() && fb.solver_extent_radii >= 1.5) {
-            return Err(Error::setup(f, "fiber.solver_extent_radii", fb.solver_extent_radii, "must be at least 1.5 core radii"));
+            return Err(Error::setup(
+                f,
+                "fiber.solver_extent_radii",
+                fb.solver_extent_radii,
+                "must be at least 1.5 core radii",
+            ));
         }
         if !(fb.cutoff_margin_b.is_finite() && (0.0..0.5).contains(&fb.cutoff_margin_b)) {
-            return Err(Error::setup(f, "fiber.cutoff_margin_b", fb.cutoff_margin_b, "must be in [0, 0.5)"));
+            return Err(Error::setup(
+                f,
+                "fiber.cutoff_margin_b",
+                fb.cutoff_margin_b,
+                "must be in [0, 0.5)",
+            ));
         }
         Ok(())
     }
@@ -563,14 +689,24 @@ impl Setup {
         let b = &self.basis;
         if let Some(g) = b.groups {
             if g == 0 {
-                return Err(Error::setup(f, "basis.groups", 0, "keep at least one mode group"));
+                return Err(Error::setup(
+                    f,
+                    "basis.groups",
+                    0,
+                    "keep at least one mode group",
+                ));
             }
         }
         if let Some(w) = b.waist_um {
             finite_positive(f, "basis.waist_um", w)?;
         }
         if matches!(b.kind, BasisKind::Lg | BasisKind::Hg) && b.groups.is_none() {
-            return Err(Error::setup(f, "basis.groups", "(missing)", "lg and hg bases need the number of mode groups"));
+            return Err(Error::setup(
+                f,
+                "basis.groups",
+                "(missing)",
+                "lg and hg bases need the number of mode groups",
+            ));
         }
         Ok(())
     }
@@ -614,14 +750,18 @@ na = 0.2
     #[test]
     fn unknown_key_is_named() {
         let t = format!("{MINIMAL}\nbogus_key = 3\n");
-        let e = Setup::from_toml(&t, Path::new("s.toml")).unwrap_err().to_string();
+        let e = Setup::from_toml(&t, Path::new("s.toml"))
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("bogus_key"), "{e}");
     }
 
     #[test]
     fn na_above_cladding_index_is_rejected() {
         let t = MINIMAL.replace("na = 0.2", "na = 1.6");
-        let e = Setup::from_toml(&t, Path::new("s.toml")).unwrap_err().to_string();
+        let e = Setup::from_toml(&t, Path::new("s.toml"))
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("fiber.na") && e.contains("1.6"), "{e}");
     }
 

@@ -1,1 +1,2 @@
 //! matrix stage (in progress).
+pub mod haar;

@@ -1,1 +1,2 @@
-//! render stage (in progress).
+//! Pictures and the report.
+pub mod colour;
