@@ -226,7 +226,7 @@ pub fn figures(
     let cut_off_groups = ids
         .iter()
         .zip(&group_received_db)
-        .filter(|(_, d)| !(**d >= cut_off_db))
+        .filter(|(_, d)| **d < cut_off_db)
         .map(|(g, _)| *g)
         .collect();
     let (polarization_crosstalk_db, polarization_crosstalk_overall_db) = if n_channels == n_pols {

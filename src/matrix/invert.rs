@@ -101,7 +101,7 @@ pub fn invert_targets(
     let mut warnings = Vec::new();
     let (lambda, source) = match reg {
         Regularization::Default => {
-            if !(condition <= MAX_CONDITION_DEFAULT) {
+            if condition > MAX_CONDITION_DEFAULT {
                 return Err(Error::Input(format!(
                     "the matrix is ill-conditioned: condition number {condition:.3e} \
                      (s_max {s_max:.3e}, s_min {s_min:.3e}) exceeds {MAX_CONDITION_DEFAULT:e}; \
@@ -120,7 +120,7 @@ pub fn invert_targets(
             (r * s_max, "relative")
         }
     };
-    if source != "default" && !(condition <= MAX_CONDITION_DEFAULT) {
+    if source != "default" && condition > MAX_CONDITION_DEFAULT {
         let gain = if lambda > 0.0 {
             1.0 / (2.0 * lambda)
         } else {
