@@ -459,3 +459,28 @@ fn report_command_writes_once_and_honours_force_and_out() {
     assert!(v["report"].as_str().unwrap().contains("elsewhere"));
     assert!(other.join("report.html").is_file());
 }
+
+#[test]
+fn report_shows_a_mean_and_per_frame_captured_power() {
+    // Common practice, no source: summary.json with a mean captured power and a per-frame
+    // list; group numbers label the group power table.
+    let d = tempfile::tempdir().unwrap();
+    let summary = serde_json::json!({
+        "captured_power": 0.93,
+        "captured_power_min": 0.9,
+        "captured_power_per_frame": [0.9, 0.95, 0.94],
+        "groups": [2, 5],
+        "group_power": [[0.9, 0.1], [0.1, 0.9]],
+        "group_crosstalk_overall_db": -9.5
+    });
+    std::fs::write(d.path().join("summary.json"), summary.to_string()).unwrap();
+    let r = render::assemble_report(d.path()).unwrap();
+    assert_eq!(
+        r.html.matches("src=\"data:image/png;base64,").count(),
+        1,
+        "per-frame chart"
+    );
+    assert!(r.included.iter().any(|i| i.item == "chart"));
+    assert!(r.html.contains("<th>G5</th>") && r.html.contains("-9.500"));
+    assert!(r.html.contains("captured_power_min") && !r.html.contains("Other summary values"));
+}

@@ -172,29 +172,39 @@ pub fn assemble_report(dir: &Path) -> Result<Report> {
 
     // Captured power
     h.push_str("<section id=\"power\"><h2>Captured power</h2>\n");
-    let captured = summary.as_ref().and_then(|s| s.get("captured_power"));
     let mut chart = None;
-    match captured {
-        Some(v) => {
-            let series = per_frame(v);
-            let _ = writeln!(h, "<p>{}</p>", escape(&describe(v)));
-            if series.len() > 1 {
-                let img = line_chart(
-                    &series,
-                    "captured power per frame",
-                    "frame",
-                    "captured power (fraction)",
-                );
-                let bytes = super::canvas::encode_png(&img)?;
-                chart = Some(Png {
-                    name: "captured power per frame (drawn from summary.json)".into(),
-                    bytes,
-                    width: img.width(),
-                    height: img.height(),
-                });
-            }
+    let found: Vec<(&str, &Value)> = CAPTURED_KEYS
+        .iter()
+        .filter_map(|k| summary.as_ref()?.get(*k).map(|v| (*k, v)))
+        .collect();
+    if found.is_empty() {
+        h.push_str("<p class=\"missing\">No captured power in summary.json.</p>\n");
+    } else {
+        h.push_str("<table><tr><th>key</th><th>value</th></tr>\n");
+        for (k, v) in &found {
+            let _ = writeln!(h, "<tr><td>{k}</td><td>{}</td></tr>", escape(&describe(v)));
         }
-        None => h.push_str("<p class=\"missing\">No captured power in summary.json.</p>\n"),
+        h.push_str("</table>\n");
+        let series = found
+            .iter()
+            .map(|(_, v)| per_frame(v))
+            .max_by_key(|s| s.len())
+            .unwrap_or_default();
+        if series.len() > 1 {
+            let img = line_chart(
+                &series,
+                "captured power per frame",
+                "frame",
+                "captured power (fraction)",
+            );
+            let bytes = super::canvas::encode_png(&img)?;
+            chart = Some(Png {
+                name: "captured power per frame (drawn from summary.json)".into(),
+                bytes,
+                width: img.width(),
+                height: img.height(),
+            });
+        }
     }
     if let Some(c) = &chart {
         inc.push(Included {
@@ -417,12 +427,34 @@ fn per_frame(v: &Value) -> Vec<f64> {
     v.as_f64().map(|x| vec![x]).unwrap_or_default()
 }
 
+/// Summary keys shown in the captured-power section.
+const CAPTURED_KEYS: &[&str] = &[
+    "captured_power",
+    "captured_power_min",
+    "captured_power_per_frame",
+];
+
 const MERITS: &[(&str, &str, &str)] = &[
     ("insertion_loss_db", "Insertion loss", "dB"),
     ("mode_dependent_loss_db", "Mode-dependent loss", "dB"),
     ("unitarity_error", "Unitarity error", ""),
     ("condition_number", "Condition number", ""),
-    ("group_crosstalk_db", "Group crosstalk", "dB"),
+    (
+        "group_crosstalk_overall_db",
+        "Group crosstalk, overall",
+        "dB",
+    ),
+    (
+        "group_crosstalk_db",
+        "Group crosstalk per input group",
+        "dB",
+    ),
+    (
+        "polarization_crosstalk_overall_db",
+        "Polarisation crosstalk, overall",
+        "dB",
+    ),
+    ("drift_max_abs_rad", "Phase drift, largest", "rad"),
     ("drift_rad", "Phase drift", "rad"),
 ];
 
@@ -443,8 +475,12 @@ fn merit_tables(h: &mut String, s: &Value) {
     }
     h.push_str("</table>\n");
     if let Some(sv) = s.get("singular_values").and_then(numbers) {
-        h.push_str(
-            "<h3>Singular values</h3><table><tr><th>i</th><th>s_i</th><th>s_i² (dB)</th></tr>\n",
+        let _ = writeln!(
+            h,
+            "<h3>Singular values</h3><details{}><summary>{}</summary>\
+             <table><tr><th>i</th><th>s_i</th><th>s_i² (dB)</th></tr>",
+            if sv.len() <= 12 { " open" } else { "" },
+            escape(&describe(&Value::from(sv.clone())))
         );
         for (i, x) in sv.iter().enumerate() {
             let _ = writeln!(
@@ -454,18 +490,26 @@ fn merit_tables(h: &mut String, s: &Value) {
                 fmt_num(20.0 * x.abs().log10())
             );
         }
-        h.push_str("</table>\n");
+        h.push_str("</table></details>\n");
     }
     if let Some(rows) = s.get("group_power").and_then(Value::as_array) {
         let rows: Option<Vec<Vec<f64>>> = rows.iter().map(numbers).collect();
         if let Some(rows) = rows.filter(|r| !r.is_empty()) {
+            let names: Vec<String> = match s.get("groups").and_then(numbers) {
+                Some(g) if g.len() == rows.len() => g.iter().map(|x| format!("G{x}")).collect(),
+                _ => (1..=rows.len()).map(|i| format!("G{i}")).collect(),
+            };
             h.push_str("<h3>Group power (dB; row: output group, column: input group)</h3><table><tr><th></th>");
             for j in 0..rows[0].len() {
-                let _ = write!(h, "<th>G{}</th>", j + 1);
+                let name = names
+                    .get(j)
+                    .cloned()
+                    .unwrap_or_else(|| format!("G{}", j + 1));
+                let _ = write!(h, "<th>{}</th>", escape(&name));
             }
             h.push_str("</tr>\n");
             for (i, r) in rows.iter().enumerate() {
-                let _ = write!(h, "<tr><th>G{}</th>", i + 1);
+                let _ = write!(h, "<tr><th>{}</th>", escape(&names[i]));
                 for x in r {
                     let _ = write!(h, "<td class=\"num\">{}</td>", fmt_num(10.0 * x.log10()));
                 }
@@ -477,7 +521,8 @@ fn merit_tables(h: &mut String, s: &Value) {
     let known: Vec<&str> = MERITS
         .iter()
         .map(|m| m.0)
-        .chain(["singular_values", "group_power", "captured_power"])
+        .chain(CAPTURED_KEYS.iter().copied())
+        .chain(["singular_values", "group_power", "groups"])
         .collect();
     if let Some(obj) = s.as_object() {
         let rest: Vec<_> = obj
