@@ -71,7 +71,9 @@ fn hologram(
 }
 
 fn to_u16(v: &[f64]) -> Vec<u16> {
-    v.iter().map(|&x| x.round().clamp(0.0, 65535.0) as u16).collect()
+    v.iter()
+        .map(|&x| x.round().clamp(0.0, 65535.0) as u16)
+        .collect()
 }
 
 fn write_frames(dir: &Path, name: &str, w: usize, h: usize, frames: &[Vec<f64>]) -> PathBuf {
@@ -195,9 +197,22 @@ fn tilted_offset_gaussian_decodes_to_its_hg_coefficients() {
     let stack = write_frames(d.path(), "h.tif", 256, 256, &[holo]);
     write_frames(d.path(), "ref.tif", 256, 256, &[vec![r2; 256 * 256]]);
     let sampler = hg_sampler(beam.w0);
-    for (with_ref, removed) in [(true, [0.0, 0.0]), (false, [0.0, 0.0]), (true, [30.0, -20.0])] {
-        let extra = if with_ref { "[frames]\nreference = \"ref.tif\"" } else { "" };
-        let ch = format!("tilt_mrad = [{}, {}]", removed[0], removed[1]);
+    for (with_ref, removed) in [
+        (true, [0.0, 0.0]),
+        (false, [0.0, 0.0]),
+        (true, [30.0, -20.0]),
+    ] {
+        let extra = if with_ref {
+            "[frames]\nreference = \"ref.tif\""
+        } else {
+            ""
+        };
+        // the carrier is given: an automatic search would take the tilted beam's spectral
+        // peak, absorbing the tilt into the carrier
+        let ch = format!(
+            "carrier = [{}, {}]\ntilt_mrad = [{}, {}]",
+            carrier[0], carrier[1], removed[0], removed[1]
+        );
         let setup = load(d.path(), &setup_text(region, &ch, extra));
         let dec = decode_stack(
             &setup,
@@ -207,15 +222,16 @@ fn tilted_offset_gaussian_decodes_to_its_hg_coefficients() {
             &no_progress,
         )
         .unwrap();
-        let c = dec.channels[0].carrier_cycles_per_px;
-        assert!((c[0] - carrier[0]).abs() < 0.01 && (c[1] - carrier[1]).abs() < 0.01, "{c:?}");
         let got: Vec<Complex64> = dec.coefficients.iter().copied().collect();
         let want: Vec<Complex64> = (0..NMAX)
             .flat_map(|n| (0..NMAX).map(move |m| (n, m)))
             .map(|(n, m)| beam.coefficient(n, m, removed))
             .collect();
         let e = rel_err(&got, &want);
-        assert!(e < 1e-3, "with_ref {with_ref}, removed {removed:?}: relative error {e:.2e}");
+        assert!(
+            e < 1e-3,
+            "with_ref {with_ref}, removed {removed:?}: relative error {e:.2e}"
+        );
         // field power in counts: amp^2 (unit-power Gaussian)
         let p = dec.field_power[[0, 0]];
         assert!((p / (beam.amp * beam.amp) - 1.0).abs() < 2e-3, "power {p}");
@@ -236,10 +252,25 @@ fn carrier_found_for_angles_and_periods() {
         tilt_mrad: [0.0, 0.0],
         amp: 600.0,
     };
-    for (period, angle_deg) in [(8.0, 0.0), (5.0, 30.0), (4.0, 135.0), (6.5, -60.0), (3.2, 45.0), (2.5, 10.0), (2.2, 90.0)] {
+    for (period, angle_deg) in [
+        (8.0, 0.0),
+        (5.0, 30.0),
+        (4.0, 135.0),
+        (6.5, -60.0),
+        (3.2, 45.0),
+        (2.5, 10.0),
+        (2.2, 90.0),
+    ] {
         let a: f64 = f64::to_radians(angle_deg);
         let carrier = [a.cos() / period, a.sin() / period];
-        let holo = hologram(128, 128, region, &|x, y| beam.camera(x, y), carrier, 10000.0);
+        let holo = hologram(
+            128,
+            128,
+            region,
+            &|x, y| beam.camera(x, y),
+            carrier,
+            10000.0,
+        );
         let name = format!("c{period}_{angle_deg}.tif");
         let stack = write_frames(d.path(), &name, 128, 128, &[holo]);
         // the half-plane rule picks fx > 0 (or fx == 0, fy > 0); conjugate flips to the mirror
@@ -252,7 +283,10 @@ fn carrier_found_for_angles_and_periods() {
             (c[0] - carrier[0]).abs() < 0.01 && (c[1] - carrier[1]).abs() < 0.01,
             "period {period} angle {angle_deg}: found {c:?}, true {carrier:?}"
         );
-        let warned = p.warnings.iter().any(|w| w.contains("below 3 px per fringe"));
+        let warned = p
+            .warnings
+            .iter()
+            .any(|w| w.contains("below 3 px per fringe"));
         assert_eq!(warned, period < 3.0, "period {period}: {:?}", p.warnings);
     }
 }
@@ -270,38 +304,68 @@ fn sideband_position_and_tilt_phase_slope_have_the_documented_sign() {
         tilt_mrad: [40.0, 0.0],
         amp: 800.0,
     };
-    // reference tilted towards -x: f_R = (-0.25, 0), so the signal sideband is at +0.25
-    let holo = hologram(128, 128, region, &|x, y| beam.camera(x, y), [0.25, 0.0], 10000.0);
+    // reference tilted towards -x: f_R = (-0.25, 0), so the signal sideband is at +0.25;
+    // the beam's tilt moves its spectral peak by +t / lambda * FP along +x
+    let holo = hologram(
+        128,
+        128,
+        region,
+        &|x, y| beam.camera(x, y),
+        [0.25, 0.0],
+        10000.0,
+    );
     let stack = write_frames(d.path(), "t.tif", 128, 128, &[holo]);
-    let setup = load(d.path(), &setup_text(region, "", ""));
+    let shift = 0.040 / LAMBDA_UM * FP;
+    for (conj, sign) in [("", 1.0), ("conjugate = true", -1.0)] {
+        let setup = load(d.path(), &setup_text(region, conj, ""));
+        let p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
+        let c = p.channels[0].carrier_cycles_per_px;
+        assert!(
+            (c[0] - sign * (0.25 + shift)).abs() < 2e-3 && c[1].abs() < 2e-3,
+            "{conj}: {c:?}"
+        );
+    }
     let opts = DecodeOptions {
         keep_fields: true,
         ..Default::default()
     };
-    let dec = decode_stack(&setup, None, &[stack.clone()], &opts, &no_progress).unwrap();
-    let ch = &dec.channels[0];
-    assert!((ch.carrier_cycles_per_px[0] - 0.25).abs() < 0.01);
-    let f = &dec.fields.as_ref().unwrap()[0];
-    let g = ch.grid();
-    let (cy, cx) = (g.ny / 2, g.nx / 2);
-    let dphi = (f[[0, cy, cx + 1]] * f[[0, cy, cx]].conj()).arg() / g.pitch_um;
     let k = 2.0 * PI / LAMBDA_UM;
-    assert!((dphi - k * 0.040).abs() < 0.02 * k * 0.040, "slope {dphi}, expected {}", k * 0.040);
-    // the decoded field's phase at the region centre is the signal's (reference phase 0 there)
-    assert!(f[[0, cy, cx]].arg().abs() < 1e-2, "{}", f[[0, cy, cx]].arg());
-    // the mirrored order (conjugate = true) holds conj(S): its phase slope is reversed
-    let setup = load(d.path(), &setup_text(region, "conjugate = true", ""));
-    let dec = decode_stack(&setup, None, &[stack], &opts, &no_progress).unwrap();
-    assert!((dec.channels[0].carrier_cycles_per_px[0] + 0.25).abs() < 0.01);
-    let f = &dec.fields.as_ref().unwrap()[0];
-    let dphi = (f[[0, cy, cx + 1]] * f[[0, cy, cx]].conj()).arg() / g.pitch_um;
-    assert!((dphi + k * 0.040).abs() < 0.02 * k * 0.040, "mirrored slope {dphi}");
+    for (carrier, sign) in [
+        ("carrier = [0.25, 0.0]", 1.0),
+        ("carrier = [-0.25, 0.0]", -1.0),
+    ] {
+        let setup = load(d.path(), &setup_text(region, carrier, ""));
+        let dec = decode_stack(&setup, None, &[stack.clone()], &opts, &no_progress).unwrap();
+        let g = dec.channels[0].grid();
+        let f = &dec.fields.as_ref().unwrap()[0];
+        let (cy, cx) = (g.ny / 2, g.nx / 2);
+        let dphi = (f[[0, cy, cx + 1]] * f[[0, cy, cx]].conj()).arg() / g.pitch_um;
+        // the mirrored order (-carrier) holds conj(S): its phase slope is reversed
+        let want = sign * k * 0.040;
+        assert!(
+            (dphi - want).abs() < 0.02 * want.abs(),
+            "{carrier}: slope {dphi}, expected {want}"
+        );
+        // phase origin at the region's centre pixel: the beam's phase there is 0
+        assert!(
+            f[[0, cy, cx]].arg().abs() < 1e-2,
+            "{}",
+            f[[0, cy, cx]].arg()
+        );
+    }
 }
 
 /// A straightforward full complex-FFT decoder (whole spectrum, hard circular window,
 /// inverse FFT at full size, demodulation by exp(-i 2 pi c.(r - r_c)), divide by |R| FP),
 /// sampled every `step` pixels. Reference implementation for the pruned path.
-fn full_fft_decode(img: &[f64], n: usize, c: [f64; 2], radius: f64, r_amp: f64, step: usize) -> Vec<Complex64> {
+fn full_fft_decode(
+    img: &[f64],
+    n: usize,
+    c: [f64; 2],
+    radius: f64,
+    r_amp: f64,
+    step: usize,
+) -> Vec<Complex64> {
     use rustfft::FftPlanner;
     let mut p = FftPlanner::<f64>::new();
     let (f, inv) = (p.plan_fft_forward(n), p.plan_fft_inverse(n));
@@ -367,7 +431,10 @@ fn pruned_path_equals_full_fft() {
     let q: Vec<f64> = to_u16(&holo).iter().map(|&v| v as f64).collect();
     let stack = write_frames(d.path(), "p.tif", n, n, &[holo]);
     let ch = format!("carrier = [{}, {}]\nwindow_radius = 0.08", c[0], c[1]);
-    let setup = load(d.path(), &setup_text([0, 0, n, n], &ch, "[decode]\ngrid_px = 64"));
+    let setup = load(
+        d.path(),
+        &setup_text([0, 0, n, n], &ch, "[decode]\ngrid_px = 64"),
+    );
     let opts = DecodeOptions {
         keep_fields: true,
         ..Default::default()
@@ -381,8 +448,15 @@ fn pruned_path_equals_full_fft() {
     let fast: Vec<Complex64> = dec.fields.unwrap()[0].iter().copied().collect();
     let slow = full_fft_decode(&q, n, c, 0.08, r_amp, 4);
     let peak = slow.iter().map(|z| z.norm()).fold(0.0, f64::max);
-    let worst = fast.iter().zip(&slow).map(|(a, b)| (a - b).norm()).fold(0.0, f64::max);
-    assert!(worst < 1e-4 * peak, "max difference {worst:.3e}, peak {peak:.3e}");
+    let worst = fast
+        .iter()
+        .zip(&slow)
+        .map(|(a, b)| (a - b).norm())
+        .fold(0.0, f64::max);
+    assert!(
+        worst < 1e-4 * peak,
+        "max difference {worst:.3e}, peak {peak:.3e}"
+    );
 }
 
 /// Parseval: the captured power from real-space overlaps equals the one from the overlaps of
@@ -396,12 +470,19 @@ fn captured_power_agrees_in_real_and_fourier_space() {
     let (holo, beam) = beam_hologram(n, [0.27, 0.05], 12000.0);
     let stack = write_frames(d.path(), "q.tif", n, n, &[holo]);
     let setup = load(d.path(), &setup_text([0, 0, n, n], "", ""));
-    let sampler = hg_sampler(beam.w0 * 1.3); // a mismatched waist: captured power < 1
+    let sampler = hg_sampler(beam.w0 * 3.0); // a mismatched waist: captured power < 1
     let opts = DecodeOptions {
         keep_fields: true,
         ..Default::default()
     };
-    let dec = decode_stack(&setup, Some(&sampler as BasisSampler), &[stack], &opts, &no_progress).unwrap();
+    let dec = decode_stack(
+        &setup,
+        Some(&sampler as BasisSampler),
+        &[stack],
+        &opts,
+        &no_progress,
+    )
+    .unwrap();
     let g = dec.channels[0].grid();
     let field = &dec.fields.as_ref().unwrap()[0];
     let basis = sampler(&g, &Alignment::default()).unwrap();
@@ -431,15 +512,30 @@ fn captured_power_agrees_in_real_and_fourier_space() {
     let power_f: f64 = e_hat.iter().map(|z| z.norm_sqr()).sum::<f64>() / npx * da;
     let mut cap_f = 0.0;
     for k in 0..basis.dim().0 {
-        let b_hat = fft2(basis.index_axis(ndarray::Axis(0), k).iter().copied().collect());
-        let c: Complex64 = b_hat.iter().zip(&e_hat).map(|(b, e)| b.conj() * e).sum::<Complex64>() / npx * da;
+        let b_hat = fft2(
+            basis
+                .index_axis(ndarray::Axis(0), k)
+                .iter()
+                .copied()
+                .collect(),
+        );
+        let c: Complex64 = b_hat
+            .iter()
+            .zip(&e_hat)
+            .map(|(b, e)| b.conj() * e)
+            .sum::<Complex64>()
+            / npx
+            * da;
         cap_f += c.norm_sqr();
     }
     cap_f /= power_f;
     let cap_r = dec.captured[[0, 0]];
     assert!((power_f - dec.field_power[[0, 0]]).abs() < 1e-9 * power_f);
-    assert!((cap_f - cap_r).abs() < 1e-9, "Fourier {cap_f}, real {cap_r}");
-    assert!(cap_r < 0.99 && cap_r > 0.5, "{cap_r}");
+    assert!(
+        (cap_f - cap_r).abs() < 1e-9,
+        "Fourier {cap_f}, real {cap_r}"
+    );
+    assert!(cap_r < 0.99 && cap_r > 0.1, "{cap_r}");
 }
 
 /// The batched projection (one complex matrix product) equals the direct sums
@@ -450,7 +546,10 @@ fn batched_projection_equals_direct_sums() {
     let g = Grid::centred(12, 10, 0.7);
     let modes = 5;
     let basis = Array3::from_shape_fn((modes, 10, 12), |(k, y, x)| {
-        Complex64::new(((k * 7 + y * 3 + x) % 11) as f64 - 5.0, ((k + 2 * x + y * y) % 5) as f64)
+        Complex64::new(
+            ((k * 7 + y * 3 + x) % 11) as f64 - 5.0,
+            ((k + 2 * x + y * y) % 5) as f64,
+        )
     });
     let fields = ndarray::Array2::from_shape_fn((3, 120), |(f, i)| {
         Complex64::new(((f * 13 + i) % 17) as f64, -(((f + i * 3) % 7) as f64))
@@ -495,11 +594,21 @@ fn propagate(s: &[Complex64], n: usize, dz: f64) -> Vec<Complex64> {
     let mut a = s.to_vec();
     fft2(&mut a, &f);
     let k = 2.0 * PI / LAMBDA_UM;
-    let sf = |i: usize| (if i > n / 2 { i as f64 - n as f64 } else { i as f64 }) / (n as f64 * FP);
+    let sf = |i: usize| {
+        (if i > n / 2 {
+            i as f64 - n as f64
+        } else {
+            i as f64
+        }) / (n as f64 * FP)
+    };
     for ky in 0..n {
         for kx in 0..n {
             let kt2 = (2.0 * PI).powi(2) * (sf(kx).powi(2) + sf(ky).powi(2));
-            a[ky * n + kx] *= Complex64::from_polar(1.0, ((k * k - kt2).sqrt() - k) * dz) / (n * n) as f64;
+            a[ky * n + kx] *= if kt2 < k * k {
+                Complex64::from_polar(1.0, ((k * k - kt2).sqrt() - k) * dz) / (n * n) as f64
+            } else {
+                Complex64::default() // evanescent
+            };
         }
     }
     fft2(&mut a, &inv);
@@ -525,7 +634,14 @@ fn defocus_is_undone_with_the_documented_sign() {
         .collect();
     let rec = propagate(&face, n, dz);
     let carrier = [0.26, 0.08];
-    let holo = hologram(n, n, [0, 0, n, n], &|x, y| rec[(y + rc) as usize * n + (x + rc) as usize], carrier, 20000.0);
+    let holo = hologram(
+        n,
+        n,
+        [0, 0, n, n],
+        &|x, y| rec[(y + rc) as usize * n + (x + rc) as usize],
+        carrier,
+        20000.0,
+    );
     let stack = write_frames(d.path(), "dz.tif", n, n, &[holo]);
     write_frames(d.path(), "ref.tif", n, n, &[vec![20000.0; n * n]]);
     let want: Vec<Complex64> = (0..NMAX)
@@ -535,14 +651,31 @@ fn defocus_is_undone_with_the_documented_sign() {
     let sampler = hg_sampler(beam.w0);
     let mut errs = Vec::new();
     for set_dz in [dz, 0.0] {
-        let ch = format!("defocus_um = {set_dz}");
-        let setup = load(d.path(), &setup_text([0, 0, n, n], &ch, "[frames]\nreference = \"ref.tif\""));
-        let dec = decode_stack(&setup, Some(&sampler as BasisSampler), &[stack.clone()], &DecodeOptions::default(), &no_progress).unwrap();
+        let ch = format!(
+            "carrier = [{}, {}]\ndefocus_um = {set_dz}",
+            carrier[0], carrier[1]
+        );
+        let setup = load(
+            d.path(),
+            &setup_text([0, 0, n, n], &ch, "[frames]\nreference = \"ref.tif\""),
+        );
+        let dec = decode_stack(
+            &setup,
+            Some(&sampler as BasisSampler),
+            &[stack.clone()],
+            &DecodeOptions::default(),
+            &no_progress,
+        )
+        .unwrap();
         let got: Vec<Complex64> = dec.coefficients.iter().copied().collect();
         errs.push(rel_err(&got, &want));
     }
     assert!(errs[0] < 1e-3, "with defocus: {:.2e}", errs[0]);
-    assert!(errs[1] > 0.05, "without defocus the error should be large: {:.2e}", errs[1]);
+    assert!(
+        errs[1] > 0.05,
+        "without defocus the error should be large: {:.2e}",
+        errs[1]
+    );
 }
 
 /// Dark subtraction and saturation: adding a dark pattern to the frames and giving it as
@@ -559,7 +692,8 @@ fn dark_frame_is_subtracted_and_saturation_counted() {
         sat[(40 + i) * n + 60] = 65535.0;
     }
     let s0 = write_frames(d.path(), "a.tif", n, n, &[holo.clone()]);
-    let s1 = write_frames(d.path(), "b.tif", n, n, &[with_dark, sat]);
+    let s1 = write_frames(d.path(), "b.tif", n, n, &[with_dark]);
+    let s2 = write_frames(d.path(), "c.tif", n, n, &[sat]);
     write_frames(d.path(), "dark.tif", n, n, &[dark]);
     let opts = DecodeOptions {
         keep_fields: true,
@@ -567,15 +701,23 @@ fn dark_frame_is_subtracted_and_saturation_counted() {
     };
     let setup0 = load(d.path(), &setup_text([0, 0, n, n], "", ""));
     let a = decode_stack(&setup0, None, &[s0], &opts, &no_progress).unwrap();
-    let setup1 = load(d.path(), &setup_text([0, 0, n, n], "", "[frames]\ndark = \"dark.tif\""));
+    let setup1 = load(
+        d.path(),
+        &setup_text([0, 0, n, n], "", "[frames]\ndark = \"dark.tif\""),
+    );
     let b = decode_stack(&setup1, None, &[s1], &opts, &no_progress).unwrap();
+    let c = decode_stack(&setup1, None, &[s2.clone(), s2], &opts, &no_progress).unwrap();
     let fa = &a.fields.as_ref().unwrap()[0];
     let fb = &b.fields.as_ref().unwrap()[0];
     let peak = fa.iter().map(|z| z.norm()).fold(0.0, f64::max);
-    let diff = fa.iter().zip(fb.index_axis(ndarray::Axis(0), 0).iter()).map(|(x, y)| (x - y).norm()).fold(0.0, f64::max);
+    let diff = fa
+        .iter()
+        .zip(fb.index_axis(ndarray::Axis(0), 0).iter())
+        .map(|(x, y)| (x - y).norm())
+        .fold(0.0, f64::max);
     assert!(diff < 1e-3 * peak, "{diff} vs {peak}");
     assert_eq!(b.saturated[[0, 0]], 0);
-    assert_eq!(b.saturated[[1, 0]], 7);
+    assert_eq!((c.saturated[[0, 0]], c.saturated[[1, 0]]), (7, 7));
 }
 
 fn err_text(r: modegram::Result<impl Sized>) -> (String, i32) {
@@ -592,7 +734,10 @@ fn region_outside_the_frame_is_named() {
     let stack = write_frames(d.path(), "s.tif", 64, 64, &[holo]);
     let setup = load(d.path(), &setup_text([32, 0, 64, 64], "", ""));
     let (m, code) = err_text(prepare(&setup, &[stack], &DecodeOptions::default()));
-    assert!(m.contains("channel[0].region") && m.contains("[32, 0, 64, 64]") && m.contains("64x64"), "{m}");
+    assert!(
+        m.contains("channel[0].region") && m.contains("[32, 0, 64, 64]") && m.contains("64x64"),
+        "{m}"
+    );
     assert_eq!(code, 2);
 }
 
@@ -603,14 +748,22 @@ fn no_sideband_says_where_it_searched() {
     let mut x: u64 = 12345;
     let noise: Vec<f64> = (0..64 * 64)
         .map(|_| {
-            x = x.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
             1000.0 + (x >> 40) as f64 / (1u64 << 24) as f64 * 100.0
         })
         .collect();
     let stack = write_frames(d.path(), "n.tif", 64, 64, &[noise]);
     let setup = load(d.path(), &setup_text([0, 0, 64, 64], "", ""));
     let (m, code) = err_text(prepare(&setup, &[stack], &DecodeOptions::default()));
-    assert!(m.contains("n.tif") && m.contains("no sideband found") && m.contains("strongest peak") && m.contains("0.05"), "{m}");
+    assert!(
+        m.contains("n.tif")
+            && m.contains("no sideband found")
+            && m.contains("strongest peak")
+            && m.contains("0.05"),
+        "{m}"
+    );
     assert_eq!(code, 2);
 }
 
@@ -626,15 +779,24 @@ fn sideband_overlapping_dc_warns_or_fails_when_strict() {
     let p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
     assert!(p.channels[0].separation_margin_cycles_per_px < 0.0);
     let w = p.warnings.join("\n");
-    assert!(w.contains("overlaps the DC order") && w.contains("0.1200") && w.contains("margin"), "{w}");
+    assert!(
+        w.contains("overlaps the DC order") && w.contains("0.1200") && w.contains("margin"),
+        "{w}"
+    );
     let strict = DecodeOptions {
         strict: true,
         ..Default::default()
     };
     let (m, code) = err_text(prepare(&setup, &[stack.clone()], &strict));
-    assert!(m.contains("channel[0].window_radius") && m.contains("overlaps"), "{m}");
+    assert!(
+        m.contains("channel[0].window_radius") && m.contains("overlaps"),
+        "{m}"
+    );
     assert_eq!(code, 2);
-    let setup = load(d.path(), &setup_text([0, 0, 128, 128], ch, "[decode]\nstrict = true"));
+    let setup = load(
+        d.path(),
+        &setup_text([0, 0, 128, 128], ch, "[decode]\nstrict = true"),
+    );
     assert!(prepare(&setup, &[stack], &DecodeOptions::default()).is_err());
 }
 
@@ -643,15 +805,29 @@ fn sideband_overlapping_dc_warns_or_fails_when_strict() {
 fn two_carriers_in_one_region_are_two_channels() {
     let d = tempfile::tempdir().unwrap();
     let n = 256;
-    let b1 = Beam { w0: 3.0, d: [1.0, 0.0], tilt_mrad: [0.0, 0.0], amp: 700.0 };
-    let b2 = Beam { w0: 3.0, d: [-1.0, 1.0], tilt_mrad: [0.0, 0.0], amp: 400.0 };
+    let b1 = Beam {
+        w0: 3.0,
+        d: [1.0, 0.0],
+        tilt_mrad: [0.0, 0.0],
+        amp: 700.0,
+    };
+    let b2 = Beam {
+        w0: 3.0,
+        d: [-1.0, 1.0],
+        tilt_mrad: [0.0, 0.0],
+        amp: 400.0,
+    };
     let (c1, c2) = ([0.3, 0.0], [0.0, 0.3]);
     // I = |S1 + R1|^2 + |S2 + R2|^2 (two mutually incoherent pairs, e.g. two polarisations)
     let h1 = hologram(n, n, [0, 0, n, n], &|x, y| b1.camera(x, y), c1, 8000.0);
     let h2 = hologram(n, n, [0, 0, n, n], &|x, y| b2.camera(x, y), c2, 8000.0);
     let h: Vec<f64> = h1.iter().zip(&h2).map(|(a, b)| a + b).collect();
     let stack = write_frames(d.path(), "m.tif", n, n, &[h]);
-    let mut text = setup_text([0, 0, n, n], "carrier = [0.3, 0.0]\nwindow_radius = 0.08", "");
+    let mut text = setup_text(
+        [0, 0, n, n],
+        "carrier = [0.3, 0.0]\nwindow_radius = 0.08",
+        "",
+    );
     text.push_str(&format!("[[channel]]\nname = \"V\"\nregion = [0, 0, {n}, {n}]\nmagnification = {MAG}\ncarrier = [0.0, 0.3]\nwindow_radius = 0.08\n"));
     let setup = load(d.path(), &text);
     let mut p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
@@ -663,8 +839,16 @@ fn two_carriers_in_one_region_are_two_channels() {
     let pr = projectors(&p, Some(&sampler as BasisSampler)).unwrap();
     let dec = decode_prepared(&p, &pr, &[stack], &DecodeOptions::default(), &no_progress).unwrap();
     for (ch, b) in [(0, &b1), (1, &b2)] {
-        let got: Vec<Complex64> = dec.coefficients.index_axis(ndarray::Axis(1), ch).iter().copied().collect();
-        let want: Vec<Complex64> = (0..NMAX).flat_map(|a| (0..NMAX).map(move |m| (a, m))).map(|(a, m)| b.coefficient(a, m, [0.0, 0.0])).collect();
+        let got: Vec<Complex64> = dec
+            .coefficients
+            .index_axis(ndarray::Axis(1), ch)
+            .iter()
+            .copied()
+            .collect();
+        let want: Vec<Complex64> = (0..NMAX)
+            .flat_map(|a| (0..NMAX).map(move |m| (a, m)))
+            .map(|(a, m)| b.coefficient(a, m, [0.0, 0.0]))
+            .collect();
         let e = rel_err(&got, &want);
         assert!(e < 2e-3, "channel {ch}: {e:.2e}");
     }
@@ -677,6 +861,7 @@ fn two_carriers_in_one_region_are_two_channels() {
 fn numpy_reference_decoder_agrees() {
     let ok = std::process::Command::new("python3")
         .args(["-c", "import numpy"])
+        .stderr(std::process::Stdio::null())
         .status()
         .map(|s| s.success())
         .unwrap_or(false);
@@ -693,14 +878,18 @@ fn numpy_reference_decoder_agrees() {
     {
         use std::io::Write;
         let mut f = std::fs::File::create(&npy).unwrap();
-        f.write_all(&modegram::frames::npy_header("<f8", &[1, n, n])).unwrap();
+        f.write_all(&modegram::frames::npy_header("<f8", &[1, n, n]))
+            .unwrap();
         for v in &q {
             f.write_all(&v.to_le_bytes()).unwrap();
         }
     }
     let ch = format!("carrier = [{}, {}]\nwindow_radius = 0.07", c[0], c[1]);
     let setup = load(d.path(), &setup_text([0, 0, n, n], &ch, ""));
-    let opts = DecodeOptions { keep_fields: true, ..Default::default() };
+    let opts = DecodeOptions {
+        keep_fields: true,
+        ..Default::default()
+    };
     let p = prepare(&setup, &[npy.clone()], &opts).unwrap();
     let plan = &p.plans[0];
     let r_amp = match &plan.spec.reference {
@@ -716,14 +905,29 @@ fn numpy_reference_decoder_agrees() {
     std::fs::write(&pj, params.to_string()).unwrap();
     let out = d.path().join("numpy_field.npy");
     let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/numpy_reference.py");
-    let st = std::process::Command::new("python3").arg(&script).arg(&npy).arg(&pj).arg(&out).status().unwrap();
+    let st = std::process::Command::new("python3")
+        .arg(&script)
+        .arg(&npy)
+        .arg(&pj)
+        .arg(&out)
+        .status()
+        .unwrap();
     assert!(st.success());
     let np: ndarray::Array2<Complex64> = modegram::export::read_npy(&out).unwrap();
-    let fast = dec.fields.as_ref().unwrap()[0].index_axis(ndarray::Axis(0), 0).to_owned();
+    let fast = dec.fields.as_ref().unwrap()[0]
+        .index_axis(ndarray::Axis(0), 0)
+        .to_owned();
     assert_eq!(np.dim(), fast.dim());
     let peak = np.iter().map(|z| z.norm()).fold(0.0, f64::max);
-    let worst = np.iter().zip(fast.iter()).map(|(a, b)| (a - b).norm()).fold(0.0, f64::max);
-    assert!(worst < 1e-4 * peak, "numpy vs modegram: {worst:.3e} (peak {peak:.3e})");
+    let worst = np
+        .iter()
+        .zip(fast.iter())
+        .map(|(a, b)| (a - b).norm())
+        .fold(0.0, f64::max);
+    assert!(
+        worst < 1e-4 * peak,
+        "numpy vs modegram: {worst:.3e} (peak {peak:.3e})"
+    );
 }
 
 /// Existing outputs are kept unless --force (exit status 2, file untouched).
@@ -747,6 +951,12 @@ fn cli_keeps_existing_outputs_without_force() {
         .assert()
         .code(2);
     let err = String::from_utf8_lossy(&a.get_output().stderr).to_string();
-    assert!(err.contains("coefficients.npy") && err.contains("--force"), "{err}");
-    assert_eq!(std::fs::read(out.join("coefficients.npy")).unwrap(), b"keep me");
+    assert!(
+        err.contains("coefficients.npy") && err.contains("--force"),
+        "{err}"
+    );
+    assert_eq!(
+        std::fs::read(out.join("coefficients.npy")).unwrap(),
+        b"keep me"
+    );
 }

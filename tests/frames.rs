@@ -28,7 +28,12 @@ fn tiff_u16_multi_page_round_trip() {
     let d = tempfile::tempdir().unwrap();
     let p = d.path().join("s.tif");
     let frames: Vec<Vec<u16>> = (0..3)
-        .map(|k| pattern(33, 17, k, 65535.0).iter().map(|&v| v as u16).collect())
+        .map(|k| {
+            pattern(33, 17, k, 65535.0)
+                .iter()
+                .map(|&v| v as u16)
+                .collect()
+        })
         .collect();
     let refs: Vec<&[u16]> = frames.iter().map(Vec::as_slice).collect();
     write_tiff_u16(&p, 33, 17, &refs).unwrap();
@@ -47,7 +52,12 @@ fn tiff_f32_round_trip() {
     let d = tempfile::tempdir().unwrap();
     let p = d.path().join("f.tiff");
     let frames: Vec<Vec<f32>> = (0..2)
-        .map(|k| pattern(20, 10, k, 1.5).iter().map(|&v| v as f32 - 0.2).collect())
+        .map(|k| {
+            pattern(20, 10, k, 1.5)
+                .iter()
+                .map(|&v| v as f32 - 0.2)
+                .collect()
+        })
         .collect();
     let refs: Vec<&[f32]> = frames.iter().map(Vec::as_slice).collect();
     write_tiff_f32(&p, 20, 10, &refs).unwrap();
@@ -178,14 +188,41 @@ fn write_npy(p: &Path, descr: &str, shape: &[usize], data: &[u8]) {
 fn npy_stacks_of_every_dtype_and_byte_order() {
     let d = tempfile::tempdir().unwrap();
     let (n, h, w) = (3, 5, 7);
-    let vals: Vec<f64> = (0..n).flat_map(|k| pattern(w, h, k, 200.0)).map(f64::round).collect();
+    let vals: Vec<f64> = (0..n)
+        .flat_map(|k| pattern(w, h, k, 200.0))
+        .map(f64::round)
+        .collect();
     type Enc = fn(f64, bool) -> Vec<u8>;
     let cases: [(&str, Enc); 5] = [
         ("u1", |v, _| vec![v as u8]),
-        ("u2", |v, be| if be { (v as u16).to_be_bytes().to_vec() } else { (v as u16).to_le_bytes().to_vec() }),
-        ("u4", |v, be| if be { (v as u32).to_be_bytes().to_vec() } else { (v as u32).to_le_bytes().to_vec() }),
-        ("f4", |v, be| if be { (v as f32).to_be_bytes().to_vec() } else { (v as f32).to_le_bytes().to_vec() }),
-        ("f8", |v, be| if be { v.to_be_bytes().to_vec() } else { v.to_le_bytes().to_vec() }),
+        ("u2", |v, be| {
+            if be {
+                (v as u16).to_be_bytes().to_vec()
+            } else {
+                (v as u16).to_le_bytes().to_vec()
+            }
+        }),
+        ("u4", |v, be| {
+            if be {
+                (v as u32).to_be_bytes().to_vec()
+            } else {
+                (v as u32).to_le_bytes().to_vec()
+            }
+        }),
+        ("f4", |v, be| {
+            if be {
+                (v as f32).to_be_bytes().to_vec()
+            } else {
+                (v as f32).to_le_bytes().to_vec()
+            }
+        }),
+        ("f8", |v, be| {
+            if be {
+                v.to_be_bytes().to_vec()
+            } else {
+                v.to_le_bytes().to_vec()
+            }
+        }),
     ];
     for (code, enc) in cases {
         for be in [false, true] {
@@ -196,7 +233,10 @@ fn npy_stacks_of_every_dtype_and_byte_order() {
             let (got, r) = read_all(&p);
             assert_eq!((r.width(), r.height(), r.len()), (w, h, Some(n)), "{descr}");
             let flat: Vec<f32> = got.concat();
-            assert!(flat.iter().zip(&vals).all(|(&a, &b)| a == b as f32), "{descr}");
+            assert!(
+                flat.iter().zip(&vals).all(|(&a, &b)| a == b as f32),
+                "{descr}"
+            );
         }
     }
 }
@@ -208,7 +248,10 @@ fn npy_truncated_names_the_frame() {
     write_npy(&p, "<u2", &[4, 8, 8], &vec![1u8; 2 * 8 * 8 * 2 + 10]);
     let e = FrameReader::open(&p).err().unwrap();
     let m = e.to_string();
-    assert!(m.contains("t.npy") && m.contains("frame 2") && m.contains("truncated"), "{m}");
+    assert!(
+        m.contains("t.npy") && m.contains("frame 2") && m.contains("truncated"),
+        "{m}"
+    );
     assert_eq!(e.exit_code(), 2);
 }
 
@@ -231,7 +274,10 @@ fn png_8_and_16_bit_greyscale() {
     let (g, r) = read_all(&p8);
     assert_eq!((r.kind(), g.len()), (PixelKind::U8, 1));
     assert!(g[0].iter().zip(&v8).all(|(&a, &b)| a == b as f32));
-    let v16: Vec<u16> = pattern(w, h, 1, 65535.0).iter().map(|&v| v as u16).collect();
+    let v16: Vec<u16> = pattern(w, h, 1, 65535.0)
+        .iter()
+        .map(|&v| v as u16)
+        .collect();
     let bytes: Vec<u8> = v16.iter().flat_map(|v| v.to_be_bytes()).collect();
     let p16 = d.path().join("b.png");
     write_png(&p16, w as u32, h as u32, png::BitDepth::Sixteen, &bytes);
@@ -315,7 +361,10 @@ fn mixed_sizes_nan_and_blank_frames_are_rejected_with_their_index() {
     let mut s = FrameStack::open(&[nan]).unwrap();
     s.read_next(&mut buf).unwrap();
     let m = s.read_next(&mut buf).unwrap_err().to_string();
-    assert!(m.contains("nan.tif, frame 1") && m.contains("x 1, y 1"), "{m}");
+    assert!(
+        m.contains("nan.tif, frame 1") && m.contains("x 1, y 1"),
+        "{m}"
+    );
     // all-zero frame 0
     let z = u16_tiff(d.path(), "z.tif", 8, 8, &[vec![0; 64]]);
     let mut s = FrameStack::open(&[z]).unwrap();
@@ -333,5 +382,8 @@ fn saturation_level_is_the_format_maximum() {
     f[3 * 16 + 5] = 65535.0; // inside region [4, 2, 8, 4]
     f[0] = 65535.0; // outside
     f[5 * 16 + 11] = 70000.0; // inside, above
-    assert_eq!(modegram::decode::count_saturated(&f, 16, [4, 2, 8, 4], 65535.0), 2);
+    assert_eq!(
+        modegram::decode::count_saturated(&f, 16, [4, 2, 8, 4], 65535.0),
+        2
+    );
 }

@@ -74,7 +74,10 @@ fn basis_sampler(
 ) -> Result<
     Option<
         Box<
-            dyn Fn(&crate::grid::Grid, &crate::grid::Alignment) -> Result<ndarray::Array3<Complex64>>
+            dyn Fn(
+                    &crate::grid::Grid,
+                    &crate::grid::Alignment,
+                ) -> Result<ndarray::Array3<Complex64>>
                 + Sync,
         >,
     >,

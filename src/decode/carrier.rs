@@ -43,7 +43,8 @@ impl MeanSpectrum {
                     };
                     row[x] = (src[x] - b) as f64;
                 }
-                rfft.process(&mut row, &mut spec).expect("sizes match the plan");
+                rfft.process(&mut row, &mut spec)
+                    .expect("sizes match the plan");
                 for k in 0..nk {
                     cols[k * h + y] = spec[k];
                 }
@@ -122,12 +123,14 @@ pub fn find_peak(s: &MeanSpectrum, dc_exclusion: f64, conjugate: bool) -> Peak {
         0.0
     } else {
         let mid = outside.len() / 2;
-        *outside
-            .select_nth_unstable_by(mid, |a, b| a.total_cmp(b))
-            .1
+        *outside.select_nth_unstable_by(mid, |a, b| a.total_cmp(b)).1
     };
     let refine = |lo: f64, mid: f64, hi: f64| {
-        let (l, c, r) = (lo.max(1e-300).ln(), mid.max(1e-300).ln(), hi.max(1e-300).ln());
+        let (l, c, r) = (
+            lo.max(1e-300).ln(),
+            mid.max(1e-300).ln(),
+            hi.max(1e-300).ln(),
+        );
         let den = l - 2.0 * c + r;
         if den < 0.0 {
             (0.5 * (l - r) / den).clamp(-0.5, 0.5)
@@ -144,6 +147,10 @@ pub fn find_peak(s: &MeanSpectrum, dc_exclusion: f64, conjugate: bool) -> Peak {
     Peak {
         carrier: c,
         magnitude: m,
-        contrast: if median > 0.0 { m / median } else { f64::INFINITY },
+        contrast: if median > 0.0 {
+            m / median
+        } else {
+            f64::INFINITY
+        },
     }
 }

@@ -280,7 +280,8 @@ fn decode_batch(
     let nch = p.plans.len();
     let n = bufs.len();
     // Per chunk: for each channel the mutable rows of that chunk.
-    let mut field_chunks: Vec<Vec<&mut [Complex64]>> = (0..scratch.len()).map(|_| Vec::new()).collect();
+    let mut field_chunks: Vec<Vec<&mut [Complex64]>> =
+        (0..scratch.len()).map(|_| Vec::new()).collect();
     for f in b.fields.iter_mut() {
         let cols = f.ncols();
         let flat = f.as_slice_mut().expect("batch arrays are contiguous");

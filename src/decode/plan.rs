@@ -231,7 +231,10 @@ impl DecodePlan {
         let kc = self.carrier_bin;
         let rc = [(w / 2) as f64, (h / 2) as f64];
         let k = 2.0 * PI / (s.wavelength_nm * 1e-3);
-        let t = [s.alignment.tilt_mrad[0] * 1e-3, s.alignment.tilt_mrad[1] * 1e-3];
+        let t = [
+            s.alignment.tilt_mrad[0] * 1e-3,
+            s.alignment.tilt_mrad[1] * 1e-3,
+        ];
         let mut factor = vec![Complex64::default(); nx * ny];
         for jy in 0..ny {
             let ry = jy as f64 * h as f64 / ny as f64;
@@ -308,7 +311,7 @@ impl DecodePlan {
     pub fn cropped_spectrum<'s>(&self, frame: &[f32], s: &'s mut Scratch) -> &'s [Complex64] {
         let [x0, y0, w, h] = self.spec.region;
         let fw = self.spec.frame_width;
-        let (nx, ny) = self.spec.grid_px;
+        let nx = self.spec.grid_px.0;
         let bg = &self.spec.background;
         for y in 0..h {
             let src = &frame[(y0 + y) * fw + x0..][..w];
@@ -337,13 +340,11 @@ impl DecodePlan {
                 s.crop[iy * nx + ix] = Complex64::new(v.re as f64, v.im as f64);
             }
         }
-        let _ = ny;
         &s.crop
     }
 
     /// Decode one full frame into `out` (ny * nx, row-major `[y][x]`) on [`DecodePlan::grid`].
     pub fn decode(&self, frame: &[f32], s: &mut Scratch, out: &mut [Complex64]) {
-        let (nx, ny) = self.spec.grid_px;
         self.cropped_spectrum(frame, s);
         for (c, f) in s.crop.iter_mut().zip(&self.filter) {
             *c *= f;
@@ -352,7 +353,6 @@ impl DecodePlan {
         for ((o, c), f) in out.iter_mut().zip(&s.crop).zip(&self.factor) {
             *o = c * f;
         }
-        let _ = ny;
     }
 
     /// Unnormalised 2-D inverse FFT (sign +i) of `s.crop`, in place.
@@ -365,7 +365,8 @@ impl DecodePlan {
             for iy in 0..ny {
                 s.tmp[iy] = s.crop[iy * nx + ix];
             }
-            self.ifft_y.process_with_scratch(&mut s.tmp, &mut s.iscratch);
+            self.ifft_y
+                .process_with_scratch(&mut s.tmp, &mut s.iscratch);
             for iy in 0..ny {
                 s.crop[iy * nx + ix] = s.tmp[iy];
             }

@@ -194,7 +194,10 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
                 let mut m = 0.0;
                 for fr in &cf {
                     for y in 0..h {
-                        m += fr[(y0 + y) * fw + x0..][..w].iter().map(|&v| v as f64).sum::<f64>();
+                        m += fr[(y0 + y) * fw + x0..][..w]
+                            .iter()
+                            .map(|&v| v as f64)
+                            .sum::<f64>();
                     }
                 }
                 vec![m / (cf.len() * w * h) as f64; w * h]
@@ -221,7 +224,11 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
                             cf.len(),
                             ch.region,
                             pk.carrier[0].abs(),
-                            if ch.conjugate { -pk.carrier[1] } else { pk.carrier[1] },
+                            if ch.conjugate {
+                                -pk.carrier[1]
+                            } else {
+                                pk.carrier[1]
+                            },
                             pk.contrast,
                             MIN_SIDEBAND_CONTRAST
                         ),
@@ -273,8 +280,14 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
                 ));
             }
         }
-        let (nx, ny) = choose_grid(w, h, radius, setup.decode.grid_px)
-            .map_err(|r| Error::setup(&f, "decode.grid_px", format!("{:?}", setup.decode.grid_px), format!("channel {}: {r}", ch.name)))?;
+        let (nx, ny) = choose_grid(w, h, radius, setup.decode.grid_px).map_err(|r| {
+            Error::setup(
+                &f,
+                "decode.grid_px",
+                format!("{:?}", setup.decode.grid_px),
+                format!("channel {}: {r}", ch.name),
+            )
+        })?;
         let alignment = opts
             .alignments
             .as_ref()
@@ -285,7 +298,13 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
             Some(r) => {
                 let amp: Vec<f64> = region_of(r, fw, ch.region)
                     .iter()
-                    .zip(dark.as_ref().map(|d| region_of(d, fw, ch.region)).unwrap_or_default().iter().chain(std::iter::repeat(&0.0)))
+                    .zip(
+                        dark.as_ref()
+                            .map(|d| region_of(d, fw, ch.region))
+                            .unwrap_or_default()
+                            .iter()
+                            .chain(std::iter::repeat(&0.0)),
+                    )
                     .map(|(&r, &d)| (r - d).max(0.0).sqrt())
                     .collect();
                 let mean = amp.iter().sum::<f64>() / amp.len() as f64;
@@ -359,10 +378,7 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
         });
         plans.push(plan);
     }
-    let saturation_counts = setup
-        .camera
-        .saturation_counts
-        .or(stack.kind().max_counts());
+    let saturation_counts = setup.camera.saturation_counts.or(stack.kind().max_counts());
     Ok(Prepared {
         plans,
         channels: infos,

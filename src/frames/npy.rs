@@ -88,9 +88,11 @@ impl NpyFrames {
             .map(|v| v.starts_with("True"))
             .unwrap_or(false);
         if fortran {
-            return Err(bad("Fortran-ordered NPY arrays are not supported; save with \
+            return Err(bad(
+                "Fortran-ordered NPY arrays are not supported; save with \
                  numpy.ascontiguousarray"
-                .into()));
+                    .into(),
+            ));
         }
         let shape_txt = value_of(&dict, "shape")
             .and_then(|v| v.strip_prefix('('))
@@ -133,7 +135,8 @@ impl NpyFrames {
         let data_offset = (prefix + hlen) as u64;
         let need = data_offset + (count * height * width * item) as u64;
         if file_len < need {
-            let have = (file_len.saturating_sub(data_offset)) as usize / (height * width * item).max(1);
+            let have =
+                (file_len.saturating_sub(data_offset)) as usize / (height * width * item).max(1);
             return Err(Error::frame(
                 path,
                 Some(have),

@@ -187,7 +187,9 @@ impl TiffStackWriter {
     pub fn write_u16(&mut self, width: usize, height: usize, data: &[u16]) -> Result<()> {
         self.check(width, height, data.len())?;
         let r = match &mut self.enc {
-            Writer::Open(e) => e.write_image::<colortype::Gray16>(width as u32, height as u32, data),
+            Writer::Open(e) => {
+                e.write_image::<colortype::Gray16>(width as u32, height as u32, data)
+            }
             Writer::Done => return Err(self.err("writer finished")),
         };
         r.map_err(|e| self.err(e))?;
