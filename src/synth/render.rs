@@ -11,10 +11,10 @@
 //!
 //! Random numbers: frame f draws from its own generator seeded by (seed, f), so the frames are
 //! identical for any number of threads.
+use crate::synth::fft2::Fft2Scratch;
 use crate::synth::optics::ChannelOptics;
 use crate::synth::scenario::Scenario;
 use crate::synth::truth::SynthRng;
-use crate::synth::fft2::Fft2Scratch;
 use ndarray::{Array2, ArrayView1, Axis};
 use num_complex::Complex64;
 use rand_distr::{Distribution, Poisson, StandardNormal};

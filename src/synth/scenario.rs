@@ -10,6 +10,7 @@
 //! and value in the error.
 use crate::error::{Error, Result};
 use crate::grid::Alignment;
+use crate::matrix::PolMixing;
 use crate::setup::{BasisSpec, Camera, Fiber, Light};
 use serde::{Deserialize, Serialize};
 use std::path::{Path, PathBuf};
@@ -139,21 +140,19 @@ pub enum TransferKind {
 pub struct Transfer {
     #[serde(default)]
     pub kind: TransferKind,
-    /// Mode-dependent loss, dB (20 log10 s_max / s_min of the square device matrix).
+    /// Mode-dependent loss, dB (20 log10 s_max / s_min).
     #[serde(default)]
     pub mdl_db: f64,
     /// Mean insertion loss, dB (-10 log10 mean s^2).
     #[serde(default)]
     pub insertion_loss_db: f64,
-    /// Expected fraction of a column's power leaving its mode group, dB (e.g. -20);
-    /// omitted: none.
+    /// Power leaving the input's mode group over power staying, dB (e.g. -20); omitted: none.
     #[serde(default)]
     pub group_crosstalk_db: Option<f64>,
-    /// 0: each input polarisation reaches only its own output channel; 1: one Haar unitary
-    /// over both polarisations of a group; in between a rotation sending on average
-    /// pol_mixing / 2 of the power to the other polarisation.
+    /// "none" (input polarisation p reaches channel p only), "rotation" (a random
+    /// polarisation rotation per group) or "full" (one Haar block over both polarisations).
     #[serde(default)]
-    pub pol_mixing: f64,
+    pub pol_mixing: PolMixing,
     /// kind = "file": complex128 NPY of shape (channels * modes, polarizations * modes).
     #[serde(default)]
     pub file: Option<PathBuf>,
@@ -166,7 +165,7 @@ impl Default for Transfer {
             mdl_db: 0.0,
             insertion_loss_db: 0.0,
             group_crosstalk_db: None,
-            pol_mixing: 0.0,
+            pol_mixing: PolMixing::Full,
             file: None,
         }
     }
@@ -345,13 +344,23 @@ impl Scenario {
         let f = self.file.display().to_string();
         let f = f.as_str();
         if self.version != 1 {
-            return Err(Error::setup(f, "version", self.version, "only version 1 is known"));
+            return Err(Error::setup(
+                f,
+                "version",
+                self.version,
+                "only version 1 is known",
+            ));
         }
         // The shared sections follow the setup file's rules.
         self.bare_setup().validate()?;
         self.validate_sensor(f)?;
         if self.channels.is_empty() {
-            return Err(Error::setup(f, "channel", "[]", "give at least one [[channel]]"));
+            return Err(Error::setup(
+                f,
+                "channel",
+                "[]",
+                "give at least one [[channel]]",
+            ));
         }
         for i in 0..self.channels.len() {
             self.validate_channel(f, i)?;
@@ -374,7 +383,12 @@ impl Scenario {
             ("drift.rate_rad_per_frame", self.drift.rate_rad_per_frame),
         ] {
             if !v.is_finite() || (key == "drift.step_rad" && v < 0.0) {
-                return Err(Error::setup(f, key, v, "must be a finite number (step >= 0)"));
+                return Err(Error::setup(
+                    f,
+                    key,
+                    v,
+                    "must be a finite number (step >= 0)",
+                ));
             }
         }
         Ok(())
@@ -383,13 +397,28 @@ impl Scenario {
     fn validate_sensor(&self, f: &str) -> Result<()> {
         let s = &self.sensor;
         if s.width_px < 8 || s.width_px > 1 << 15 {
-            return Err(Error::setup(f, "sensor.width_px", s.width_px, "must be 8 to 32768"));
+            return Err(Error::setup(
+                f,
+                "sensor.width_px",
+                s.width_px,
+                "must be 8 to 32768",
+            ));
         }
         if s.height_px < 8 || s.height_px > 1 << 15 {
-            return Err(Error::setup(f, "sensor.height_px", s.height_px, "must be 8 to 32768"));
+            return Err(Error::setup(
+                f,
+                "sensor.height_px",
+                s.height_px,
+                "must be 8 to 32768",
+            ));
         }
         if s.bit_depth != 8 && s.bit_depth != 16 {
-            return Err(Error::setup(f, "sensor.bit_depth", s.bit_depth, "must be 8 or 16"));
+            return Err(Error::setup(
+                f,
+                "sensor.bit_depth",
+                s.bit_depth,
+                "must be 8 or 16",
+            ));
         }
         if !(s.gain_e_per_count.is_finite() && s.gain_e_per_count > 0.0) {
             return Err(Error::setup(
@@ -415,11 +444,20 @@ impl Scenario {
                 f,
                 "sensor.dark_offset_counts",
                 s.dark_offset_counts,
-                format!("must be in [0, {}) for {}-bit frames", self.max_code(), s.bit_depth),
+                format!(
+                    "must be in [0, {}) for {}-bit frames",
+                    self.max_code(),
+                    s.bit_depth
+                ),
             ));
         }
         if !(1..=5).contains(&s.subpixels) {
-            return Err(Error::setup(f, "sensor.subpixels", s.subpixels, "must be 1 to 5"));
+            return Err(Error::setup(
+                f,
+                "sensor.subpixels",
+                s.subpixels,
+                "must be 1 to 5",
+            ));
         }
         Ok(())
     }
@@ -516,7 +554,12 @@ impl Scenario {
     fn validate_transfer(&self, f: &str) -> Result<()> {
         let t = &self.transfer;
         if !(t.mdl_db.is_finite() && t.mdl_db >= 0.0 && t.mdl_db <= 60.0) {
-            return Err(Error::setup(f, "transfer.mdl_db", t.mdl_db, "must be in [0, 60] dB"));
+            return Err(Error::setup(
+                f,
+                "transfer.mdl_db",
+                t.mdl_db,
+                "must be in [0, 60] dB",
+            ));
         }
         if !(t.insertion_loss_db.is_finite() && t.insertion_loss_db >= 0.0) {
             return Err(Error::setup(
@@ -527,25 +570,22 @@ impl Scenario {
             ));
         }
         if let Some(x) = t.group_crosstalk_db {
-            if !(x.is_finite() && (-80.0..=-3.0).contains(&x)) {
+            if !(x.is_finite() && (-80.0..=-1.0).contains(&x)) {
                 return Err(Error::setup(
                     f,
                     "transfer.group_crosstalk_db",
                     x,
-                    "must be in [-80, -3] dB (omit the key for none)",
+                    "must be in [-80, -1] dB (omit the key for none)",
                 ));
             }
         }
-        if !(t.pol_mixing.is_finite() && (0.0..=1.0).contains(&t.pol_mixing)) {
-            return Err(Error::setup(f, "transfer.pol_mixing", t.pol_mixing, "must be in [0, 1]"));
-        }
-        let k = self.channels.len().max(self.launch.polarizations.len());
-        if t.pol_mixing > 0.0 && t.pol_mixing < 1.0 && k > 2 {
+        let (nc, np) = (self.channels.len(), self.launch.polarizations.len());
+        if t.pol_mixing != PolMixing::Full && nc != np {
             return Err(Error::setup(
                 f,
                 "transfer.pol_mixing",
-                t.pol_mixing,
-                "partial mixing needs at most 2 channels and 2 polarizations (use 0 or 1)",
+                format!("{:?}", t.pol_mixing).to_lowercase(),
+                format!("needs as many channels as polarizations ({nc} and {np}); use \"full\""),
             ));
         }
         match (t.kind, &t.file) {
