@@ -8,6 +8,7 @@
 //! quantisation, saturation) -> [`simulate`] (all frames in parallel, deterministic for any
 //! thread count) -> [`output`] (TIFF/NPY frames, truth_matrix.npy, truth.json, setup.toml).
 //! Physics and signs follow docs/conventions.md.
+pub mod basis;
 pub mod fft2;
 pub mod optics;
 pub mod output;

@@ -248,13 +248,17 @@ pub fn write_all(
     let setup = setup_text(scn, opts)?;
     let mut paths = Vec::new();
     if scn.noise.quantisation {
+        // encode everything first, so an encoding error leaves no file behind
+        let bits = scn.sensor.bit_depth;
         let frames: Vec<&Array2<f64>> = sim.frames.iter().collect();
-        paths.push(out.write_bytes(names[0], &tiff_bytes(&frames, scn.sensor.bit_depth)?)?);
-        paths.push(out.write_bytes(names[1], &tiff_bytes(&[&sim.dark], scn.sensor.bit_depth)?)?);
-        paths.push(out.write_bytes(
-            names[2],
-            &tiff_bytes(&[&sim.reference], scn.sensor.bit_depth)?,
-        )?);
+        let bytes = [
+            tiff_bytes(&frames, bits)?,
+            tiff_bytes(&[&sim.dark], bits)?,
+            tiff_bytes(&[&sim.reference], bits)?,
+        ];
+        for (name, b) in names.iter().zip(bytes.iter()) {
+            paths.push(out.write_bytes(name, b)?);
+        }
     } else {
         let (h, w) = sim.dark.dim();
         let mut stack = ndarray::Array3::<f64>::zeros((sim.frames.len(), h, w));
