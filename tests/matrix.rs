@@ -389,6 +389,35 @@ fn insertion_loss_references() {
     assert!(e.contains("(3, 3)") && e.contains("(12, 12)"), "{e}");
 }
 
+/// The setup's `[launch]` picks the reference: back_to_back (path relative to the setup)
+/// over power_counts over relative; an unreadable back-to-back file names the key.
+#[test]
+fn loss_reference_from_setup() {
+    let d = tempfile::tempdir().unwrap();
+    let base = "version = 1\n[light]\nwavelength_nm = 1550.0\n[camera]\npixel_pitch_um = 5.5\n\
+                [fiber]\nprofile = \"graded\"\ncore_radius_um = 25.0\nna = 0.2\n[launch]\n";
+    let path = d.path().join("s.toml");
+    let load =
+        |extra: &str| modegram::setup::Setup::from_toml(&format!("{base}{extra}"), &path).unwrap();
+    let r = LossReference::from_setup(&load("")).unwrap();
+    assert_eq!(r.label(), "relative");
+    let r = LossReference::from_setup(&load("power_counts = 250.0\n")).unwrap();
+    assert!(matches!(r, LossReference::PowerCounts(p) if p == 250.0));
+    let out = OutDir::create(d.path(), false).unwrap();
+    out.write_npy("b2b.npy", &real(&array![[1.0, 0.0], [0.0, 1.0]]))
+        .unwrap();
+    let r = LossReference::from_setup(&load("power_counts = 250.0\nback_to_back = \"b2b.npy\"\n"))
+        .unwrap();
+    assert_eq!(r.label(), "back_to_back");
+    let e = LossReference::from_setup(&load("back_to_back = \"missing.npy\"\n"))
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.contains("launch.back_to_back") && e.contains("missing.npy"),
+        "{e}"
+    );
+}
+
 // ---------------------------------------------------------------- random transfer matrices
 
 /// random_transfer (construction in src/matrix/random.rs): the requested MDL is reproduced

@@ -59,6 +59,31 @@ impl LossReference {
     }
 }
 
+impl LossReference {
+    /// The reference the setup's `[launch]` describes: `back_to_back` (an NPY matrix,
+    /// complex128, path relative to the setup file) takes precedence over
+    /// `power_counts > 0`; neither gives `Relative`.
+    pub fn from_setup(setup: &crate::setup::Setup) -> Result<LossReference> {
+        let l = &setup.launch;
+        if let Some(p) = &l.back_to_back {
+            let path = setup.resolve(p);
+            let b = crate::export::read_npy::<Complex64, ndarray::Ix2>(&path).map_err(|e| {
+                Error::setup(
+                    setup.file_name(),
+                    "launch.back_to_back",
+                    p.display(),
+                    e.to_string(),
+                )
+            })?;
+            return Ok(LossReference::BackToBack(b));
+        }
+        if l.power_counts > 0.0 {
+            return Ok(LossReference::PowerCounts(l.power_counts));
+        }
+        Ok(LossReference::Relative)
+    }
+}
+
 /// The scale applied to a matrix before its figures are computed.
 #[derive(Debug, Clone, Serialize)]
 pub struct Normalisation {
