@@ -59,6 +59,31 @@ impl LossReference {
     }
 }
 
+impl LossReference {
+    /// The reference the setup's `[launch]` describes: `back_to_back` (an NPY matrix,
+    /// complex128, path relative to the setup file) takes precedence over
+    /// `power_counts > 0`; neither gives `Relative`.
+    pub fn from_setup(setup: &crate::setup::Setup) -> Result<LossReference> {
+        let l = &setup.launch;
+        if let Some(p) = &l.back_to_back {
+            let path = setup.resolve(p);
+            let b = crate::export::read_npy::<Complex64, ndarray::Ix2>(&path).map_err(|e| {
+                Error::setup(
+                    setup.file_name(),
+                    "launch.back_to_back",
+                    p.display(),
+                    e.to_string(),
+                )
+            })?;
+            return Ok(LossReference::BackToBack(b));
+        }
+        if l.power_counts > 0.0 {
+            return Ok(LossReference::PowerCounts(l.power_counts));
+        }
+        Ok(LossReference::Relative)
+    }
+}
+
 /// The scale applied to a matrix before its figures are computed.
 #[derive(Debug, Clone, Serialize)]
 pub struct Normalisation {
@@ -148,6 +173,24 @@ pub struct Figures {
     pub polarization_crosstalk_overall_db: Option<f64>,
 }
 
+/// Power of input group j landing outside it (summed directly, not as a difference, so a
+/// block-diagonal matrix gives exactly 0 and -inf dB rather than a rounding residue).
+fn off_sum(total: &[Vec<f64>], j: usize) -> f64 {
+    (0..total.len())
+        .filter(|&i| i != j)
+        .map(|i| total[i][j])
+        .sum()
+}
+
+/// Power of input polarisation p landing in channels other than p.
+fn cross(row: &[f64], p: usize) -> f64 {
+    row.iter()
+        .enumerate()
+        .filter(|(q, _)| *q != p)
+        .map(|(_, v)| v)
+        .sum()
+}
+
 /// Compute the [`Figures`] of `m` (not rescaled) for modes in `groups` (one group number per
 /// mode), `n_channels` output channels and `n_pols` input polarisations.
 pub fn figures(
@@ -215,11 +258,11 @@ pub fn figures(
         .collect();
     let db = |num: f64, den: f64| 10.0 * (num / den).log10();
     let group_crosstalk_db: Vec<f64> = (0..ng)
-        .map(|j| db(col_sum[j] - total[j][j], total[j][j]))
+        .map(|j| db(off_sum(&total, j), total[j][j]))
         .collect();
     let stay: f64 = (0..ng).map(|j| total[j][j]).sum();
-    let all: f64 = col_sum.iter().sum();
-    let group_crosstalk_overall_db = db(all - stay, stay);
+    let leave: f64 = (0..ng).map(|j| off_sum(&total, j)).sum();
+    let group_crosstalk_overall_db = db(leave, stay);
     let per_row: Vec<f64> = (0..ng).map(|i| row_power[i] / n_rows[i] as f64).collect();
     let mean_row = per_row.iter().sum::<f64>() / ng as f64;
     let group_received_db: Vec<f64> = per_row.iter().map(|p| db(*p, mean_row)).collect();
@@ -231,10 +274,11 @@ pub fn figures(
         .collect();
     let (polarization_crosstalk_db, polarization_crosstalk_overall_db) = if n_channels == n_pols {
         let per: Vec<f64> = (0..n_pols)
-            .map(|p| db(pol[p].iter().sum::<f64>() - pol[p][p], pol[p][p]))
+            .map(|p| db(cross(&pol[p], p), pol[p][p]))
             .collect();
         let diag: f64 = (0..n_pols).map(|p| pol[p][p]).sum();
-        (Some(per), Some(db(all - diag, diag)))
+        let crossed: f64 = (0..n_pols).map(|p| cross(&pol[p], p)).sum();
+        (Some(per), Some(db(crossed, diag)))
     } else {
         (None, None)
     };

@@ -12,6 +12,7 @@ pub mod launch;
 pub mod linalg;
 pub mod random;
 pub mod summary;
+pub mod target;
 pub mod write;
 
 pub use analysis::{figures, normalisation, Figures, LossReference, Normalisation};

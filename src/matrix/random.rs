@@ -14,7 +14,8 @@
 //!    over polarisations (the same spatial singular values in every polarisation);
 //!    `None`: one independent block per polarisation, input polarisation p reaching channel p
 //!    only. `Rotation` and `None` need as many channels as polarisations.
-//! 3. Inter-group crosstalk: `M = W B` with `W = exp(t A)` unitary, A anti-Hermitian with
+//! 3. Inter-group crosstalk: `M = W B` with `W = exp(t A)` unitary (computed from the
+//!    eigen-decomposition of the Hermitian -iA), A anti-Hermitian with
 //!    complex Gaussian entries only between rows of different groups (and, with `None`, only
 //!    within one channel). W is unitary, so the singular values of M are exactly s and the
 //!    MDL is exact. t is found by bisection so that the overall group crosstalk of M (power
@@ -175,11 +176,20 @@ pub fn random_transfer(
         }
     }
     let bd = super::linalg::to_dmatrix(&b);
+    // A = i H with H Hermitian: exp(t A) = Q diag(exp(i t lambda)) Q^H, one decomposition
+    // for every t of the bisection.
+    let h = &a * Complex64::new(0.0, -1.0);
+    let eig = nalgebra::SymmetricEigen::new(h);
+    let q = eig.eigenvectors;
+    let qh_b = q.adjoint() * &bd;
     let x = 10f64.powf(group_crosstalk_db / 10.0);
     let target = x / (1.0 + x);
     let off_fraction = |t: f64| -> (f64, DMatrix<Complex64>) {
-        let w = (&a * Complex64::new(t, 0.0)).exp();
-        let m = w * &bd;
+        let mut d = qh_b.clone();
+        for (i, mut row) in d.row_iter_mut().enumerate() {
+            row *= Complex64::from_polar(1.0, t * eig.eigenvalues[i]);
+        }
+        let m = &q * d;
         let (mut off, mut all) = (0.0, 0.0);
         for c in 0..cols {
             let gc = groups[c % n];
@@ -205,7 +215,7 @@ pub fn random_transfer(
         }
     }
     let mut lo = 0.0;
-    for _ in 0..50 {
+    for _ in 0..45 {
         let mid = 0.5 * (lo + hi);
         if off_fraction(mid).0 < target {
             lo = mid;

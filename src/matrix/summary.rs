@@ -161,6 +161,12 @@ pub fn analyse(asm: &Assembly, opts: &AnalysisOptions) -> Result<Analysis> {
 
 fn f(v: f64, digits: usize) -> String {
     if v.is_finite() {
+        // no "-0.000" for values that round to zero
+        let v = if v.abs() < 0.5 * 10f64.powi(-(digits as i32)) {
+            0.0
+        } else {
+            v
+        };
         format!("{v:.digits$}")
     } else {
         format!("{v}")
