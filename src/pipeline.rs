@@ -13,7 +13,7 @@ use crate::matrix::{
 };
 use crate::modes::Basis;
 use crate::setup::Setup;
-use ndarray::{Array2, Array3};
+use ndarray::Array3;
 use num_complex::Complex64;
 use std::fmt::Write as _;
 use std::path::PathBuf;
@@ -65,19 +65,6 @@ pub fn decode_sequence(
     decode_stack(setup, Some(&s as BasisSampler), &[stack], &opts, progress)
 }
 
-/// What the insertion loss is relative to, from the setup's [launch].
-pub fn loss_reference(setup: &Setup) -> Result<LossReference> {
-    if let Some(p) = &setup.launch.back_to_back {
-        let p = setup.resolve(p);
-        let m: Array2<Complex64> = crate::export::read_npy(&p)?;
-        return Ok(LossReference::BackToBack(m));
-    }
-    if setup.launch.power_counts > 0.0 {
-        return Ok(LossReference::PowerCounts(setup.launch.power_counts));
-    }
-    Ok(LossReference::Relative)
-}
-
 /// The launch layout of the setup for `basis`, checked against the decoded frame count.
 pub fn layout(setup: &Setup, basis: &Basis, n_frames: usize) -> Result<LaunchLayout> {
     let layout = LaunchLayout::new(&setup.launch, basis.len())?;
@@ -99,7 +86,7 @@ pub fn analyse_sequence(setup: &Setup, basis: &Basis, d: &Decoded) -> Result<Ana
     let groups = basis.groups();
     let captured = mean_captured_per_frame(d);
     let mut opts = AnalysisOptions::new(&groups);
-    opts.loss = loss_reference(setup)?;
+    opts.loss = LossReference::from_setup(setup)?;
     opts.captured_power = Some(&captured);
     analyse(&asm, &opts)
 }
