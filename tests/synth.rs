@@ -517,3 +517,73 @@ fn outside_regions_is_dark_and_saturation_clips() {
         .all(|&v| v <= 65535.0));
     assert!(sim.clipped_pixels > 0);
 }
+
+/// The command: a good scenario writes every file and a JSON summary; a second run without
+/// --force refuses (exit 2); a bad scenario exits 2 naming key and value and writes nothing.
+#[test]
+fn command_writes_files_and_rejects_bad_input() {
+    use assert_cmd::Command;
+    let dir = tempfile::tempdir().unwrap();
+    let scn = dir.path().join("s.toml");
+    std::fs::write(
+        &scn,
+        BASE.replace("quantisation = false", "quantisation = true"),
+    )
+    .unwrap();
+    let out = dir.path().join("out");
+    let run = |extra: &[&str]| {
+        Command::cargo_bin("modegram")
+            .unwrap()
+            .arg("synth")
+            .arg(&scn)
+            .arg("--out")
+            .arg(&out)
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let r = run(&["--json", "--auto-carrier"]);
+    assert_eq!(
+        r.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&r.stderr)
+    );
+    let j: serde_json::Value = serde_json::from_slice(&r.stdout).unwrap();
+    assert_eq!(j["frames"], 10);
+    for f in modegram::synth::file_names(&scenario(
+        BASE.replace("quantisation = false", "quantisation = true")
+            .as_str(),
+    )) {
+        assert!(out.join(f).exists(), "{f}");
+    }
+    let setup = modegram::setup::Setup::load(&out.join("setup.toml")).unwrap();
+    assert_eq!(setup.channels[0].carrier_cycles_per_px(), None);
+    let r = run(&[]);
+    assert_eq!(r.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&r.stderr).contains("--force"));
+
+    std::fs::write(
+        &scn,
+        BASE.replace("carrier = [0.25, 0.0]", "carrier = [0.75, 0.0]"),
+    )
+    .unwrap();
+    let out2 = dir.path().join("out2");
+    let r = Command::cargo_bin("modegram")
+        .unwrap()
+        .args([
+            "synth",
+            scn.to_str().unwrap(),
+            "--out",
+            out2.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(r.status.code(), Some(2));
+    let e = String::from_utf8_lossy(&r.stderr);
+    assert!(
+        e.contains("channel[0].carrier") && e.contains("0.75"),
+        "{e}"
+    );
+    assert!(!out2.exists());
+}

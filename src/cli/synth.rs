@@ -34,9 +34,8 @@ pub fn run(args: &SynthArgs) -> Result<Outcome> {
     out.ensure_writable(&names)?;
     let basis = synth::basis::solve(&scn)?;
     let groups = synth::basis::groups(&basis);
-    let sampler = |g: &crate::grid::Grid, a: &crate::grid::Alignment| {
-        synth::basis::sample(&basis, g, a)
-    };
+    let sampler =
+        |g: &crate::grid::Grid, a: &crate::grid::Alignment| synth::basis::sample(&basis, g, a);
     let l = &scn.launch;
     let n_frames = crate::matrix::LaunchLayout::from_counts(
         l.polarizations.len(),
@@ -85,15 +84,29 @@ pub fn run(args: &SynthArgs) -> Result<Outcome> {
                 .collect::<Vec<_>>()
                 .join(", "),
         ],
-        vec!["frame size".into(), format!("{w} x {h} px, {}-bit", scn.sensor.bit_depth)],
-        vec!["truth IL".into(), format!("{:.3} dB", fig.insertion_loss_db)],
-        vec!["truth MDL".into(), format!("{:.3} dB", fig.mode_dependent_loss_db)],
+        vec![
+            "frame size".into(),
+            format!("{w} x {h} px, {}-bit", scn.sensor.bit_depth),
+        ],
+        vec![
+            "truth IL".into(),
+            format!("{:.3} dB", fig.insertion_loss_db),
+        ],
+        vec![
+            "truth MDL".into(),
+            format!("{:.3} dB", fig.mode_dependent_loss_db),
+        ],
         vec!["clipped pixels".into(), sim.clipped_pixels.to_string()],
         vec![
             "files".into(),
             paths
                 .iter()
-                .map(|p| p.file_name().unwrap_or_default().to_string_lossy().into_owned())
+                .map(|p| {
+                    p.file_name()
+                        .unwrap_or_default()
+                        .to_string_lossy()
+                        .into_owned()
+                })
                 .collect::<Vec<_>>()
                 .join(", "),
         ],

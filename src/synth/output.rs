@@ -141,8 +141,11 @@ pub fn setup_for(scn: &Scenario, opts: SetupOptions) -> Setup {
 
 /// setup.toml text: a header comment and the serialised setup.
 pub fn setup_text(scn: &Scenario, opts: SetupOptions) -> Result<String> {
-    let body = toml::to_string(&setup_for(scn, opts))
+    let mut body = toml::to_string(&setup_for(scn, opts))
         .map_err(|e| Error::Input(format!("setup.toml: cannot serialise: {e}")))?;
+    if !body.ends_with('\n') {
+        body.push('\n');
+    }
     let align = if opts.true_alignment {
         "the TRUE alignment of the simulation"
     } else {

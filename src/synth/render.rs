@@ -70,12 +70,14 @@ pub fn add_hologram(
             &s.signal
         } else {
             let (rx, ry) = (&optics.ramp_x[n], &optics.ramp_y[n]);
-            for r in 0..ny {
-                let f = ry[r] * inv_n;
-                let row = &s.spectrum[r * nx..(r + 1) * nx];
-                let out = &mut s.shifted[r * nx..(r + 1) * nx];
-                for c in 0..nx {
-                    out[c] = row[c] * rx[c] * f;
+            let rows = s
+                .spectrum
+                .chunks_exact(nx)
+                .zip(s.shifted.chunks_exact_mut(nx));
+            for ((row, out), y) in rows.zip(ry.iter()) {
+                let f = y * inv_n;
+                for ((o, v), x) in out.iter_mut().zip(row).zip(rx.iter()) {
+                    *o = v * x * f;
                 }
             }
             optics.ifft.process(&mut s.shifted, &mut s.fft);

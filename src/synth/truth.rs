@@ -1,8 +1,8 @@
 //! The device's true transfer matrix, the matrix "as launched", and the seeded random
 //! streams of the simulator.
 //!
-//! Device matrix T (rows = out_channel * n_modes + mode, columns = in_polarisation * n_modes
-//! + mode, docs/conventions.md "Matrices"): random from [`crate::matrix::random_transfer`]
+//! Device matrix T (rows = out_channel * n_modes + mode, columns =
+//! in_polarisation * n_modes + mode, docs/conventions.md "Matrices"): random from [`crate::matrix::random_transfer`]
 //! (block-diagonal by mode group, Haar blocks, exact MDL, tuned group crosstalk) scaled by
 //! 10^(-insertion_loss_db / 20), or read from the scenario's NPY file.
 //!
