@@ -5,12 +5,14 @@
 //! - [`optimise`]: derivative-free minimisers (Nelder-Mead, golden section, scans, Hessian).
 //! - [`objective`]: captured power of the basis over the fields as a function of alignment.
 //! - [`fit`]: the per-channel fit on decoded fields, with uncertainties.
+//! - [`measure`]: hologram and field measurements behind the check items.
 //! - [`check`]: check items from measured numbers: status, threshold, hint.
 //! - [`watch`]: folder polling that waits for complete frame files.
 //! - [`analytic`]: Hermite-Gauss modes and simulated misaligned fields for tests.
 pub mod analytic;
 pub mod check;
 pub mod fit;
+pub mod measure;
 pub mod objective;
 pub mod optimise;
 pub mod watch;
