@@ -134,6 +134,9 @@ pub struct Measured {
     pub defocus_um: Option<f64>,
     /// Captured power fraction at the setup's alignment.
     pub captured: Option<f64>,
+    /// Distance of the sideband from the nearest copy of the DC order (the spectrum is
+    /// periodic with 1 cycle/px); None: |carrier|.
+    pub dc_distance: Option<f64>,
 }
 
 /// Fixed context for hints.
@@ -223,7 +226,7 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
     // Separation of the sideband from the DC order.
     match (m.carrier_cycles_per_px, m.window_radius, m.bandwidth) {
         (Some(c), Some(w), Some(b)) if b > 0.0 => {
-            let f = (c[0] * c[0] + c[1] * c[1]).sqrt();
+            let f = m.dc_distance.unwrap_or((c[0] * c[0] + c[1] * c[1]).sqrt());
             let margin = (f - w) / (2.0 * b);
             let (st, t) = grade_low(margin, th.separation_warn, 1.0);
             let need = w + 2.0 * b * th.separation_warn;
@@ -410,6 +413,7 @@ mod tests {
             centroid_um: Some([0.5, -0.3]),
             defocus_um: Some(1.0),
             captured: Some(0.97),
+            dc_distance: None,
         }
     }
 

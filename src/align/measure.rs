@@ -150,7 +150,7 @@ mod tests {
 
     #[test]
     fn uniformity_over_disc() {
-        let a = Array2::from_shape_fn((21, 21), |(r, c)| 1.0 + 0.1 * (c as f64 - 10.0));
+        let a = Array2::from_shape_fn((21, 21), |(_r, c)| 1.0 + 0.1 * (c as f64 - 10.0));
         let u = reference_uniformity(a.view(), 10.0, 10.0, 5.0).unwrap();
         assert!((u - 0.5 / 1.5).abs() < 1e-12);
         assert!(reference_uniformity(a.view(), -50.0, -50.0, 2.0).is_none());

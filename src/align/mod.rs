@@ -7,11 +7,13 @@
 //! - [`fit`]: the per-channel fit on decoded fields, with uncertainties.
 //! - [`measure`]: hologram and field measurements behind the check items.
 //! - [`check`]: check items from measured numbers: status, threshold, hint.
+//! - [`live`]: per-frame figures for the live view of `modegram watch`.
 //! - [`watch`]: folder polling that waits for complete frame files.
 //! - [`analytic`]: Hermite-Gauss modes and simulated misaligned fields for tests.
 pub mod analytic;
 pub mod check;
 pub mod fit;
+pub mod live;
 pub mod measure;
 pub mod objective;
 pub mod optimise;

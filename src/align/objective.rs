@@ -141,6 +141,11 @@ impl Propagator {
         }
     }
 
+    /// `kz - k` per FFT bin (rad/um), NaN for evanescent bins.
+    pub fn kz_minus_k(&self) -> &[f64] {
+        &self.kz_minus_k
+    }
+
     /// Multiply a spectrum (FFT bin order) by the transfer function of propagation by `z_um`.
     pub fn apply_transfer(&self, spectrum: &mut [Complex64], z_um: f64) {
         if z_um == 0.0 {
