@@ -49,7 +49,11 @@ fn colour_wheel_hue_follows_the_phase_convention() {
     let img = render::field_picture(&f, 1.0, "wheel");
     let (cx, cy, r) = render::field_geometry(32, 32).wheel.expect("legend");
     for (angle, colour) in [(0.0, 0), (TAU / 3.0, 1), (2.0 * TAU / 3.0, 2)] {
-        let c = px(&img, cx + 0.8 * r * f64::cos(angle), cy + 0.8 * r * f64::sin(angle));
+        let c = px(
+            &img,
+            cx + 0.8 * r * f64::cos(angle),
+            cy + 0.8 * r * f64::sin(angle),
+        );
         assert_eq!(dominant(c), colour, "angle {angle}: {c:?}");
         assert!(c[colour] > 150, "angle {angle}: {c:?}");
     }
@@ -58,7 +62,10 @@ fn colour_wheel_hue_follows_the_phase_convention() {
     assert!(centre.iter().all(|&v| v < 30), "{centre:?}");
     // Phase pi/2 sits straight below the centre (y down): hue 90 degrees, yellow-green.
     let below = px(&img, cx, cy + 0.9 * r);
-    assert!(below[1] > 200 && below[0] > 90 && below[0] < 160 && below[2] < 30, "{below:?}");
+    assert!(
+        below[1] > 200 && below[0] > 90 && below[0] < 160 && below[2] < 30,
+        "{below:?}"
+    );
 }
 
 #[test]
@@ -74,7 +81,10 @@ fn a_vortex_field_turns_like_the_wheel() {
     let g = render::field_geometry(n, n);
     let right = g.data_to_px(32.0, 56.0);
     let below = g.data_to_px(56.0, 32.0);
-    assert_eq!(px(&img, right.0, right.1), complex_rgb(Complex64::new(1.0, 0.0), 1.0));
+    assert_eq!(
+        px(&img, right.0, right.1),
+        complex_rgb(Complex64::new(1.0, 0.0), 1.0)
+    );
     let expect = complex_rgb(Complex64::from_polar(1.0, PI / 2.0), 1.0);
     assert_eq!(px(&img, below.0, below.1), expect);
 }
@@ -107,7 +117,13 @@ fn gallery_tiles_every_mode() {
 // --- Fourier plane --------------------------------------------------------------------
 
 /// Distances (pixels) from `centre` along direction `a` where pixels have colour `c`.
-fn hits_along(img: &image::RgbImage, g: &Geometry, centre: (f64, f64), a: f64, c: [u8; 3]) -> Vec<f64> {
+fn hits_along(
+    img: &image::RgbImage,
+    g: &Geometry,
+    centre: (f64, f64),
+    a: f64,
+    c: [u8; 3],
+) -> Vec<f64> {
     let mut d = Vec::new();
     let mut t = 0.0;
     while t < 400.0 {
@@ -136,12 +152,18 @@ fn fourier_window_circle_has_the_window_radius() {
         let g = render::fourier_geometry(ny, nx);
         assert_eq!(img.dimensions(), (g.image_width, g.image_height));
         let centre = render::frequency_to_px(&g, ny, nx, carrier);
-        let (rx, ry) = (radius * nx as f64 * g.px_per_cell, radius * ny as f64 * g.px_per_cell);
+        let (rx, ry) = (
+            radius * nx as f64 * g.px_per_cell,
+            radius * ny as f64 * g.px_per_cell,
+        );
         for (a, expect) in [(0.0, rx), (PI, rx), (PI / 2.0, ry), (-PI / 2.0, ry)] {
             let d = hits_along(&img, &g, centre, a, render::fourier::WINDOW_RGB);
             assert!(!d.is_empty(), "{ny}x{nx} angle {a}: no window outline");
             let mean = d.iter().sum::<f64>() / d.len() as f64;
-            assert!((mean - expect).abs() < 1.0, "{ny}x{nx} angle {a}: {mean} vs {expect}");
+            assert!(
+                (mean - expect).abs() < 1.0,
+                "{ny}x{nx} angle {a}: {mean} vs {expect}"
+            );
         }
         let dcp = render::frequency_to_px(&g, ny, nx, [0.0, 0.0]);
         let d = hits_along(&img, &g, dcp, PI / 2.0, render::fourier::DC_RGB);
@@ -161,7 +183,9 @@ fn group_boundaries_sit_between_groups_and_blocks() {
     // change before modes 1 and 3 of each block (common practice, no source).
     let groups = [1u32, 2, 2, 3, 3, 3];
     let n = 6;
-    let m = Array2::from_shape_fn((12, 12), |(r, c)| Complex64::new(1.0 + 0.01 * (r + c) as f64, 0.0));
+    let m = Array2::from_shape_fn((12, 12), |(r, c)| {
+        Complex64::new(1.0 + 0.01 * (r + c) as f64, 0.0)
+    });
     let img = render::matrix_db_picture(&m, &groups, n, -40.0);
     let g = render::matrix_geometry(12, 12);
     assert_eq!(img.dimensions(), (g.image_width, g.image_height));
@@ -257,16 +281,31 @@ fn png_written_through_the_output_folder_decodes() {
     let path = render::write_png(&out, "field.png", &img).unwrap();
     let back = image::open(&path).unwrap().to_rgb8();
     assert_eq!(back, img);
-    assert!(render::write_png(&out, "field.png", &img).is_err(), "needs --force");
+    assert!(
+        render::write_png(&out, "field.png", &img).is_err(),
+        "needs --force"
+    );
 }
 
 // --- report ---------------------------------------------------------------------------
 
 fn run_folder(d: &Path) {
     let out = OutDir::create(d, true).unwrap();
-    let m = Array2::from_shape_fn((8, 8), |(r, c)| Complex64::from_polar(1.0 / (1.0 + (r as f64 - c as f64).abs()), (r * c) as f64));
-    render::write_png(&out, "matrix_db.png", &render::matrix_db_picture(&m, &[1, 2, 2, 3], 4, -40.0)).unwrap();
-    render::write_png(&out, "singular_values.png", &render::singular_values_chart(&[1.0, 0.8, 0.5])).unwrap();
+    let m = Array2::from_shape_fn((8, 8), |(r, c)| {
+        Complex64::from_polar(1.0 / (1.0 + (r as f64 - c as f64).abs()), (r * c) as f64)
+    });
+    render::write_png(
+        &out,
+        "matrix_db.png",
+        &render::matrix_db_picture(&m, &[1, 2, 2, 3], 4, -40.0),
+    )
+    .unwrap();
+    render::write_png(
+        &out,
+        "singular_values.png",
+        &render::singular_values_chart(&[1.0, 0.8, 0.5]),
+    )
+    .unwrap();
     let summary = serde_json::json!({
         "insertion_loss_db": -1.25,
         "mode_dependent_loss_db": 3.5,
@@ -288,13 +327,23 @@ fn report_embeds_every_picture_and_loads_nothing_from_outside() {
     run_folder(d.path());
     let r = render::assemble_report(d.path()).unwrap();
     let html = &r.html;
-    assert_eq!(html.matches("src=\"data:image/png;base64,").count(), 3, "2 PNGs + captured-power chart");
+    assert_eq!(
+        html.matches("src=\"data:image/png;base64,").count(),
+        3,
+        "2 PNGs + captured-power chart"
+    );
     assert_eq!(html.matches("src=").count(), 3);
     for (i, _) in html.match_indices("href=\"") {
         assert!(html[i + 6..].starts_with('#'), "external link at {i}");
     }
     assert!(!html.contains("<script") && !html.contains("<link") && !html.contains("url("));
-    for key in ["Insertion loss", "-1.250", "G2", "something_new", "IEC 60825-1"] {
+    for key in [
+        "Insertion loss",
+        "-1.250",
+        "G2",
+        "something_new",
+        "IEC 60825-1",
+    ] {
         assert!(html.contains(key), "{key} missing");
     }
     let pics: Vec<_> = r.included.iter().filter(|i| i.item == "picture").collect();
@@ -304,8 +353,13 @@ fn report_embeds_every_picture_and_loads_nothing_from_outside() {
     use base64::Engine;
     let start = html.find("base64,").unwrap() + 7;
     let end = start + html[start..].find('"').unwrap();
-    let bytes = base64::engine::general_purpose::STANDARD.decode(&html[start..end]).unwrap();
-    assert_eq!(bytes, std::fs::read(d.path().join("matrix_db.png")).unwrap());
+    let bytes = base64::engine::general_purpose::STANDARD
+        .decode(&html[start..end])
+        .unwrap();
+    assert_eq!(
+        bytes,
+        std::fs::read(d.path().join("matrix_db.png")).unwrap()
+    );
 }
 
 #[test]
@@ -326,7 +380,11 @@ fn report_escapes_text_from_the_folder() {
     assert!(html.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
     assert!(html.contains("a &amp; b") && html.contains("&quot;quoted&quot;"));
     assert!(html.contains("&lt;b&gt;bold&lt;/b&gt;"));
-    assert!(html.contains("<tr class=\"fail\">") && html.contains("<tr class=\"pass\">") && html.contains("<tr class=\"warn\">"));
+    assert!(
+        html.contains("<tr class=\"fail\">")
+            && html.contains("<tr class=\"pass\">")
+            && html.contains("<tr class=\"warn\">")
+    );
     assert!(html.contains("1 pass") && html.contains("1 warn") && html.contains("1 fail"));
     assert!(html.contains("[1.000, -2.000]") && html.contains("0.9500"));
 }
@@ -337,11 +395,16 @@ fn report_tolerates_missing_files_and_rejects_broken_ones() {
     let d = tempfile::tempdir().unwrap();
     let r = render::assemble_report(d.path()).unwrap();
     assert!(r.html.contains("summary.json: not found"));
-    assert!(r.html.contains(render::report::LASER_SAFETY_NOTE.split(' ').next().unwrap()));
+    assert!(r
+        .html
+        .contains(render::report::LASER_SAFETY_NOTE.split(' ').next().unwrap()));
     assert!(r.included.iter().all(|i| i.status == "not found"));
     std::fs::write(d.path().join("broken.png"), b"not a png").unwrap();
     let r = render::assemble_report(d.path()).unwrap();
-    assert!(r.included.iter().any(|i| i.file == "broken.png" && i.status.starts_with("skipped")));
+    assert!(r
+        .included
+        .iter()
+        .any(|i| i.file == "broken.png" && i.status.starts_with("skipped")));
     assert!(!r.html.contains("data:image"));
     std::fs::write(d.path().join("summary.json"), "{ not json").unwrap();
     let e = render::assemble_report(d.path()).unwrap_err();
@@ -355,7 +418,11 @@ fn report_tolerates_missing_files_and_rejects_broken_ones() {
 fn laser_note_warns_without_naming_products() {
     // IEC 60825-1 (safety of laser products) is the standard the note points to.
     let n = render::report::LASER_SAFETY_NOTE;
-    assert!(n.contains("invisible infrared") && n.contains("eye damage") && n.contains("laser safety officer"));
+    assert!(
+        n.contains("invisible infrared")
+            && n.contains("eye damage")
+            && n.contains("laser safety officer")
+    );
     assert!(!n.contains('®') && !n.contains('™'));
 }
 
@@ -365,12 +432,21 @@ fn report_command_writes_once_and_honours_force_and_out() {
     let d = tempfile::tempdir().unwrap();
     run_folder(d.path());
     let bin = assert_cmd::cargo::cargo_bin("modegram");
-    let run = |args: &[&str]| std::process::Command::new(&bin).args(args).current_dir(d.path()).output().unwrap();
+    let run = |args: &[&str]| {
+        std::process::Command::new(&bin)
+            .args(args)
+            .current_dir(d.path())
+            .output()
+            .unwrap()
+    };
     let dir = d.path().to_str().unwrap();
     let o = run(&["report", dir]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let stdout = String::from_utf8_lossy(&o.stdout);
-    assert!(stdout.contains("matrix_db.png") && stdout.contains("summary.json"), "{stdout}");
+    assert!(
+        stdout.contains("matrix_db.png") && stdout.contains("summary.json"),
+        "{stdout}"
+    );
     assert!(d.path().join("report.html").is_file());
     let o = run(&["report", dir]);
     assert_eq!(o.status.code(), Some(2));
@@ -382,4 +458,29 @@ fn report_command_writes_once_and_honours_force_and_out() {
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert!(v["report"].as_str().unwrap().contains("elsewhere"));
     assert!(other.join("report.html").is_file());
+}
+
+#[test]
+fn report_shows_a_mean_and_per_frame_captured_power() {
+    // Common practice, no source: summary.json with a mean captured power and a per-frame
+    // list; group numbers label the group power table.
+    let d = tempfile::tempdir().unwrap();
+    let summary = serde_json::json!({
+        "captured_power": 0.93,
+        "captured_power_min": 0.9,
+        "captured_power_per_frame": [0.9, 0.95, 0.94],
+        "groups": [2, 5],
+        "group_power": [[0.9, 0.1], [0.1, 0.9]],
+        "group_crosstalk_overall_db": -9.5
+    });
+    std::fs::write(d.path().join("summary.json"), summary.to_string()).unwrap();
+    let r = render::assemble_report(d.path()).unwrap();
+    assert_eq!(
+        r.html.matches("src=\"data:image/png;base64,").count(),
+        1,
+        "per-frame chart"
+    );
+    assert!(r.included.iter().any(|i| i.item == "chart"));
+    assert!(r.html.contains("<th>G5</th>") && r.html.contains("-9.500"));
+    assert!(r.html.contains("captured_power_min") && !r.html.contains("Other summary values"));
 }

@@ -66,7 +66,10 @@ impl Geometry {
 
     /// Data cell `[row, col]` under pixel `(x, y)`, if inside the data area.
     pub fn px_to_cell(&self, x: u32, y: u32, rows: usize, cols: usize) -> Option<(usize, usize)> {
-        if x < self.left || y < self.top || x >= self.left + self.width || y >= self.top + self.height
+        if x < self.left
+            || y < self.top
+            || x >= self.left + self.width
+            || y >= self.top + self.height
         {
             return None;
         }
@@ -76,15 +79,10 @@ impl Geometry {
     }
 }
 
-/// Pixels per cell so that `n` cells span about `target` pixels: an integer zoom for small
-/// arrays (crisp cells), a fractional shrink for arrays larger than `target`.
+/// Pixels per cell so that `n` cells span `target` pixels (fractional: cells are sampled by
+/// nearest neighbour, so a cell may cover one pixel more or less than its neighbour).
 pub fn cell_scale(n: usize, target: usize) -> f64 {
-    let n = n.max(1);
-    if n <= target {
-        (target / n) as f64
-    } else {
-        target as f64 / n as f64
-    }
+    target as f64 / n.max(1) as f64
 }
 
 /// An RGB picture being drawn.
@@ -233,14 +231,30 @@ impl Canvas {
             let px = to_x(v).round() as i64;
             self.fill_rect(px, t + h + 1, 1, 5, BLACK);
             let s = format_tick(v, xstep);
-            self.text(&s, (px, t + h + 8), 12.0, BLACK, HPos::Center, VPos::Top, false);
+            self.text(
+                &s,
+                (px, t + h + 8),
+                12.0,
+                BLACK,
+                HPos::Center,
+                VPos::Top,
+                false,
+            );
         }
-        let (yt, ystep) = nice_ticks(y_edges.0, y_edges.1, (h / 60).clamp(2, 8) as usize);
+        let (yt, ystep) = nice_ticks(y_edges.0, y_edges.1, (h / 50).clamp(2, 10) as usize);
         for v in yt {
             let py = to_y(v).round() as i64;
             self.fill_rect(l - 6, py, 5, 1, BLACK);
             let s = format_tick(v, ystep);
-            self.text(&s, (l - 9, py), 12.0, BLACK, HPos::Right, VPos::Center, false);
+            self.text(
+                &s,
+                (l - 9, py),
+                12.0,
+                BLACK,
+                HPos::Right,
+                VPos::Center,
+                false,
+            );
         }
         self.text(
             x_label,
@@ -271,7 +285,7 @@ impl Canvas {
             self.fill_rect(x0, y0 + y, w, 1, ramp_rgb(t));
         }
         self.outline(x0, y0, w, h, BLACK);
-        if !(hi > lo) {
+        if hi.partial_cmp(&lo) != Some(std::cmp::Ordering::Greater) {
             return;
         }
         let (ticks, step) = nice_ticks(lo, hi, 6);
@@ -279,7 +293,15 @@ impl Canvas {
             let py = (y0 as f64 + (hi - v) / (hi - lo) * h as f64).round() as i64;
             self.fill_rect(x0 + w + 1, py, 4, 1, BLACK);
             let s = format_tick(v, step);
-            self.text(&s, (x0 + w + 7, py), 12.0, BLACK, HPos::Left, VPos::Center, false);
+            self.text(
+                &s,
+                (x0 + w + 7, py),
+                12.0,
+                BLACK,
+                HPos::Left,
+                VPos::Center,
+                false,
+            );
         }
         self.text(
             label,
@@ -307,7 +329,11 @@ impl Canvas {
                     continue;
                 }
                 let amp = if ring { 1.0 } else { d };
-                self.put(x, y, complex_rgb(Complex64::from_polar(amp, dy.atan2(dx)), 1.0));
+                self.put(
+                    x,
+                    y,
+                    complex_rgb(Complex64::from_polar(amp, dy.atan2(dx)), 1.0),
+                );
             }
         }
         let (cxi, cyi, ri) = (cx.round() as i64, cy.round() as i64, radius.round() as i64);
@@ -317,20 +343,29 @@ impl Canvas {
         lbl(self, "0", (cxi + ri + 4, cyi), HPos::Left, VPos::Center);
         lbl(self, "π/2", (cxi, cyi + ri + 3), HPos::Center, VPos::Top);
         lbl(self, "π", (cxi - ri - 4, cyi), HPos::Right, VPos::Center);
-        lbl(self, "3π/2", (cxi, cyi - ri - 3), HPos::Center, VPos::Bottom);
+        lbl(
+            self,
+            "3π/2",
+            (cxi, cyi - ri - 3),
+            HPos::Center,
+            VPos::Bottom,
+        );
     }
 }
 
-/// Tick values at 1-2-5 steps covering `[min(a, b), max(a, b)]` with about `count` ticks,
+/// Tick values at 1-2-2.5-5 steps covering `[min(a, b), max(a, b)]` with about `count` ticks,
 /// and the step.
 pub fn nice_ticks(a: f64, b: f64, count: usize) -> (Vec<f64>, f64) {
     let (lo, hi) = if a <= b { (a, b) } else { (b, a) };
-    if !(hi > lo) || !lo.is_finite() || !hi.is_finite() {
+    if hi.partial_cmp(&lo) != Some(std::cmp::Ordering::Greater)
+        || !lo.is_finite()
+        || !hi.is_finite()
+    {
         return (Vec::new(), 1.0);
     }
     let raw = (hi - lo) / count.max(1) as f64;
     let mag = 10f64.powf(raw.log10().floor());
-    let step = [1.0, 2.0, 5.0, 10.0]
+    let step = [1.0, 2.0, 2.5, 5.0, 10.0]
         .iter()
         .map(|m| m * mag)
         .find(|s| *s >= raw)
@@ -343,7 +378,12 @@ pub fn nice_ticks(a: f64, b: f64, count: usize) -> (Vec<f64>, f64) {
 
 /// A tick label with as many decimals as the step needs.
 pub fn format_tick(v: f64, step: f64) -> String {
-    let decimals = (-step.log10().floor()).max(0.0) as usize;
+    let decimals = (0..8)
+        .find(|&d| {
+            let x = step * 10f64.powi(d);
+            (x - x.round()).abs() < 1e-6 * x.abs().max(1.0)
+        })
+        .unwrap_or(8) as usize;
     let v = if v.abs() < step * 1e-9 { 0.0 } else { v };
     format!("{v:.decimals$}")
 }
@@ -380,4 +420,33 @@ pub fn plotters_picture(
         let _ = area.present();
     }
     img
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ticks_step_by_one_two_two_and_a_half_five() {
+        // Common practice, no source.
+        let (t, s) = nice_ticks(-0.5, 0.5, 4);
+        assert_eq!(s, 0.25);
+        assert_eq!(t, vec![-0.5, -0.25, 0.0, 0.25, 0.5]);
+        assert_eq!(format_tick(-0.25, s), "-0.25");
+        let (t, s) = nice_ticks(17.0, -3.0, 4);
+        assert_eq!((t.first().copied(), s), (Some(0.0), 5.0));
+        assert_eq!(format_tick(15.0, s), "15");
+        assert!(nice_ticks(1.0, 1.0, 4).0.is_empty());
+        assert!(nice_ticks(f64::NAN, 1.0, 4).0.is_empty());
+    }
+
+    #[test]
+    fn ellipse_outline_is_clipped_and_at_its_radius() {
+        // Common practice, no source.
+        let mut c = Canvas::new(100, 100);
+        c.ellipse((50.0, 50.0), 30.0, 30.0, 2.0, BLACK, (0, 0, 100, 60));
+        assert_eq!(c.img.get_pixel(80, 50).0, BLACK);
+        assert_eq!(c.img.get_pixel(50, 50).0, WHITE);
+        assert_eq!(c.img.get_pixel(50, 80).0, WHITE, "clipped below y = 60");
+    }
 }

@@ -81,18 +81,58 @@ pub fn field_picture(data: &Array2<Complex64>, pitch_um: f64, title: &str) -> Rg
     );
     if ny == 0 || nx == 0 {
         let (l, t) = (g.left as i64, g.top as i64);
-        c.text("no data", (l + 10, t + 10), 14.0, GREY, HPos::Left, VPos::Top, false);
+        c.text(
+            "no data",
+            (l + 10, t + 10),
+            14.0,
+            GREY,
+            HPos::Left,
+            VPos::Top,
+            false,
+        );
     }
     let title_pos = (g.left as i64, (g.top / 2) as i64);
-    c.text(title, title_pos, 16.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        title,
+        title_pos,
+        16.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     if let Some((wx, wy, wr)) = g.wheel {
         c.wheel((wx, wy), wr, false);
         let below = (wx as i64, (wy + wr + 24.0) as i64);
-        c.text("hue: phase (rad)", below, 12.0, BLACK, HPos::Center, VPos::Top, false);
+        c.text(
+            "hue: phase (rad)",
+            below,
+            12.0,
+            BLACK,
+            HPos::Center,
+            VPos::Top,
+            false,
+        );
         let below2 = (below.0, below.1 + 16);
-        c.text("radius: |E| / max", below2, 12.0, BLACK, HPos::Center, VPos::Top, false);
+        c.text(
+            "radius: |E| / max",
+            below2,
+            12.0,
+            BLACK,
+            HPos::Center,
+            VPos::Top,
+            false,
+        );
         let note = format!("max |E| = {peak:.3e}");
-        c.text(&note, (below.0, below.1 + 32), 12.0, GREY, HPos::Center, VPos::Top, false);
+        c.text(
+            &note,
+            (below.0, below.1 + 32),
+            12.0,
+            GREY,
+            HPos::Center,
+            VPos::Top,
+            false,
+        );
     }
     c.img
 }
@@ -104,7 +144,12 @@ const PAD: u32 = 8;
 
 /// Layout of [`gallery_picture`]: picture size, tile size in pixels and the number of
 /// columns actually used.
-pub fn gallery_geometry(n_modes: usize, ny: usize, nx: usize, cols: usize) -> (u32, u32, u32, u32, usize) {
+pub fn gallery_geometry(
+    n_modes: usize,
+    ny: usize,
+    nx: usize,
+    cols: usize,
+) -> (u32, u32, u32, u32, usize) {
     let cols = if cols == 0 {
         ((n_modes as f64).sqrt().ceil() as usize).max(1)
     } else {
@@ -152,8 +197,24 @@ pub fn gallery_picture(modes: &Array3<Complex64>, labels: &[String], cols: usize
     let wy = (h - 60) as f64;
     c.wheel((60.0, wy), 40.0, false);
     let tx = 130;
-    c.text("hue: phase (rad)", (tx, wy as i64 - 10), 12.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        "hue: phase (rad)",
+        (tx, wy as i64 - 10),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     let note = "brightness: |ψ| / max per tile";
-    c.text(note, (tx, wy as i64 + 10), 12.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        note,
+        (tx, wy as i64 + 10),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     c.img
 }

@@ -86,15 +86,17 @@ pub fn fourier_picture(
         let n = n.max(1) as f64;
         ((-c0 - 0.5) / n, (n - c0 - 0.5) / n)
     };
-    c.axes(
-        &g,
-        edges(nx),
-        edges(ny),
-        "fx (cycles/px)",
-        "fy (cycles/px)",
-    );
+    c.axes(&g, edges(nx), edges(ny), "fx (cycles/px)", "fy (cycles/px)");
     let title = "Fourier plane: log |spectrum|, DC at centre";
-    c.text(title, (g.left as i64, (g.top / 2) as i64), 16.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        title,
+        (g.left as i64, (g.top / 2) as i64),
+        16.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     let bx = (g.left + g.width + 30) as i64;
     let by = g.top as i64;
     let bar_h = (g.height as i64).min(200);
@@ -104,12 +106,44 @@ pub fn fourier_picture(
     c.fill_rect(bx, ly - 1, 24, 3, WINDOW_RGB);
     let fc = carrier_cycles_per_px;
     let t = format!("window r = {:.4}", window_radius_cycles_per_px);
-    c.text(&t, (bx + 30, ly), 12.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        &t,
+        (bx + 30, ly),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     let t = format!("at ({:.4}, {:.4})", fc[0], fc[1]);
-    c.text(&t, (bx + 30, ly + 16), 12.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        &t,
+        (bx + 30, ly + 16),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     c.fill_rect(bx, ly + 39, 24, 3, DC_RGB);
     let t = format!("DC exclusion r = {:.4}", dc_exclusion_cycles_per_px);
-    c.text(&t, (bx + 30, ly + 40), 12.0, BLACK, HPos::Left, VPos::Center, false);
-    c.text("(cycles/px)", (bx + 30, ly + 56), 12.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        &t,
+        (bx + 30, ly + 40),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
+    c.text(
+        "(cycles/px)",
+        (bx + 30, ly + 56),
+        12.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     c.img
 }

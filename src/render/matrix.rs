@@ -52,7 +52,7 @@ pub fn matrix_geometry(rows: usize, cols: usize) -> Geometry {
 /// of `n_modes`. Nothing when `groups` does not have `n_modes` entries or `len` is not a
 /// multiple of `n_modes`.
 pub fn boundaries(len: usize, groups: &[u32], n_modes: usize) -> Vec<(usize, bool)> {
-    if n_modes == 0 || groups.len() != n_modes || len % n_modes != 0 {
+    if n_modes == 0 || groups.len() != n_modes || !len.is_multiple_of(n_modes) {
         return Vec::new();
     }
     let mut out = Vec::new();
@@ -89,12 +89,20 @@ fn matrix_frame(c: &mut Canvas, g: &Geometry, rows: usize, cols: usize, n_modes:
         "input index (polarisation × modes + mode)",
         "output index (channel × modes + mode)",
     );
-    if n_modes > 0 && cols % n_modes == 0 && rows % n_modes == 0 {
+    if n_modes > 0 && cols.is_multiple_of(n_modes) && rows.is_multiple_of(n_modes) {
         let bw = n_modes as f64 * g.px_per_cell;
         for b in 0..cols / n_modes {
             let x = (g.left as f64 + (b as f64 + 0.5) * bw) as i64;
             let s = format!("in {}", b + 1);
-            c.text(&s, (x, g.top as i64 - 6), 12.0, BLACK, HPos::Center, VPos::Bottom, false);
+            c.text(
+                &s,
+                (x, g.top as i64 - 6),
+                12.0,
+                BLACK,
+                HPos::Center,
+                VPos::Bottom,
+                false,
+            );
         }
         for b in 0..rows / n_modes {
             let y = (g.top as f64 + (b as f64 + 0.5) * bw) as i64;
@@ -151,7 +159,15 @@ pub fn matrix_db_picture(
     }
     matrix_frame(&mut c, &g, rows, cols, n_modes);
     let title = "|M|² (dB re. largest entry); lines: mode groups, blocks";
-    c.text(title, (g.left as i64, 18), 15.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        title,
+        (g.left as i64, 18),
+        15.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     let bx = (g.left + g.width + 60) as i64;
     c.colour_bar(bx, g.top as i64, 18, 220, floor_db, 0.0, "dB");
     c.img
@@ -180,10 +196,26 @@ pub fn matrix_phase_picture(m: &Array2<Complex64>) -> RgbImage {
     });
     matrix_frame(&mut c, &g, rows, cols, 0);
     let title = "arg M (hue); entries below -20 dB dimmed";
-    c.text(title, (g.left as i64, 18), 15.0, BLACK, HPos::Left, VPos::Center, false);
+    c.text(
+        title,
+        (g.left as i64, 18),
+        15.0,
+        BLACK,
+        HPos::Left,
+        VPos::Center,
+        false,
+    );
     let (wx, wy) = ((g.left + g.width + 75) as f64, (g.top + 70) as f64);
     c.wheel((wx, wy), 45.0, true);
-    c.text("phase (rad)", (wx as i64, wy as i64 + 66), 12.0, BLACK, HPos::Center, VPos::Top, false);
+    c.text(
+        "phase (rad)",
+        (wx as i64, wy as i64 + 66),
+        12.0,
+        BLACK,
+        HPos::Center,
+        VPos::Top,
+        false,
+    );
     c.img
 }
 
@@ -205,36 +237,102 @@ pub fn group_power_picture(p: &Array2<f64>) -> RgbImage {
         wheel: None,
     };
     let mut c = Canvas::new(g.image_width, g.image_height);
-    let db = p.mapv(|v| if v > 0.0 { 10.0 * v.log10() } else { f64::NEG_INFINITY });
-    let top_db = db.iter().copied().filter(|v| v.is_finite()).fold(f64::NEG_INFINITY, f64::max);
-    let top_db = if top_db.is_finite() { top_db.ceil() } else { 0.0 };
+    let db = p.mapv(|v| {
+        if v > 0.0 {
+            10.0 * v.log10()
+        } else {
+            f64::NEG_INFINITY
+        }
+    });
+    let top_db = db
+        .iter()
+        .copied()
+        .filter(|v| v.is_finite())
+        .fold(f64::NEG_INFINITY, f64::max);
+    let top_db = if top_db.is_finite() {
+        top_db.ceil()
+    } else {
+        0.0
+    };
     let lo = top_db - 40.0;
-    c.blit(&g, rows, cols, |r, col| ramp_rgb((db[[r, col]] - lo) / 40.0));
-    c.outline(g.left as i64, g.top as i64, g.width as i64, g.height as i64, BLACK);
+    c.blit(&g, rows, cols, |r, col| {
+        ramp_rgb((db[[r, col]] - lo) / 40.0)
+    });
+    c.outline(
+        g.left as i64,
+        g.top as i64,
+        g.width as i64,
+        g.height as i64,
+        BLACK,
+    );
     for i in 0..rows {
         for j in 0..cols {
             let (x, y) = g.data_to_px(i as f64, j as f64);
             let v = db[[i, j]];
             if s >= 36.0 {
-                let t = if v.is_finite() { format!("{v:.1}") } else { "-inf".into() };
+                let t = if v.is_finite() {
+                    format!("{v:.1}")
+                } else {
+                    "-inf".into()
+                };
                 let fg = if (v - lo) / 40.0 > 0.55 { BLACK } else { WHITE };
-                c.text(&t, (x as i64, y as i64), 12.0, fg, HPos::Center, VPos::Center, false);
+                c.text(
+                    &t,
+                    (x as i64, y as i64),
+                    12.0,
+                    fg,
+                    HPos::Center,
+                    VPos::Center,
+                    false,
+                );
             }
         }
     }
     for j in 0..cols {
         let (x, _) = g.data_to_px(0.0, j as f64);
         let pos = (x as i64, (g.top + g.height + 6) as i64);
-        c.text(&format!("G{}", j + 1), pos, 12.0, BLACK, HPos::Center, VPos::Top, false);
+        c.text(
+            &format!("G{}", j + 1),
+            pos,
+            12.0,
+            BLACK,
+            HPos::Center,
+            VPos::Top,
+            false,
+        );
     }
     for i in 0..rows {
         let (_, y) = g.data_to_px(i as f64, 0.0);
         let pos = (g.left as i64 - 8, y as i64);
-        c.text(&format!("G{}", i + 1), pos, 12.0, BLACK, HPos::Right, VPos::Center, false);
+        c.text(
+            &format!("G{}", i + 1),
+            pos,
+            12.0,
+            BLACK,
+            HPos::Right,
+            VPos::Center,
+            false,
+        );
     }
     let (l, t, w, h) = (g.left as i64, g.top as i64, g.width as i64, g.height as i64);
-    c.text("input group", (l + w / 2, t + h + 28), 13.0, BLACK, HPos::Center, VPos::Top, false);
-    c.text("output group", (l - 48, t + h / 2), 13.0, BLACK, HPos::Center, VPos::Center, true);
+    c.text(
+        "input group",
+        (l + w / 2, t + h + 28),
+        13.0,
+        BLACK,
+        HPos::Center,
+        VPos::Top,
+        false,
+    );
+    c.text(
+        "output group",
+        (l - 48, t + h / 2),
+        13.0,
+        BLACK,
+        HPos::Center,
+        VPos::Center,
+        true,
+    );
     let title = "group power (dB)";
     c.text(title, (l, 24), 15.0, BLACK, HPos::Left, VPos::Center, false);
     c.colour_bar(l + w + 40, t, 18, 200, lo, top_db, "dB");
@@ -252,8 +350,10 @@ pub fn line_chart(values: &[f64], title: &str, x_label: &str, y_label: &str) -> 
         .collect();
     let (mut lo, mut hi) = pts
         .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), p| (a.min(p.1), b.max(p.1)));
-    if !(hi > lo) {
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), p| {
+            (a.min(p.1), b.max(p.1))
+        });
+    if hi.partial_cmp(&lo) != Some(std::cmp::Ordering::Greater) {
         let mid = if lo.is_finite() { lo } else { 0.0 };
         (lo, hi) = (mid - 1.0, mid + 1.0);
     }
@@ -280,9 +380,11 @@ pub fn line_chart(values: &[f64], title: &str, x_label: &str, y_label: &str) -> 
             .draw()
             .ok()?;
         let blue = RGBColor(30, 80, 180);
-        chart.draw_series(LineSeries::new(pts.iter().copied(), blue.stroke_width(2)))
+        chart
+            .draw_series(LineSeries::new(pts.iter().copied(), blue.stroke_width(2)))
             .ok()?;
-        chart.draw_series(pts.iter().map(|&p| Circle::new(p, 3, blue.filled())))
+        chart
+            .draw_series(pts.iter().map(|&p| Circle::new(p, 3, blue.filled())))
             .ok()?;
         Some(())
     })

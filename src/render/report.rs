@@ -127,7 +127,7 @@ pub fn assemble_report(dir: &Path) -> Result<Report> {
     h.push_str("<section id=\"setup\"><h2>Setup</h2>\n");
     match &setup {
         Some(t) => {
-            let _ = write!(h, "<h3>setup.toml</h3><pre>{}</pre>\n", escape(t));
+            let _ = writeln!(h, "<h3>setup.toml</h3><pre>{}</pre>", escape(t));
         }
         None => h.push_str("<p class=\"missing\">setup.toml: not found.</p>\n"),
     }
@@ -152,9 +152,9 @@ pub fn assemble_report(dir: &Path) -> Result<Report> {
         None => h.push_str("<p class=\"missing\">calibration.json: not found.</p>\n"),
     }
     if let Some(t) = &fitted {
-        let _ = write!(
+        let _ = writeln!(
             h,
-            "<details><summary>fitted.toml</summary><pre>{}</pre></details>\n",
+            "<details><summary>fitted.toml</summary><pre>{}</pre></details>",
             escape(t)
         );
     }
@@ -172,29 +172,39 @@ pub fn assemble_report(dir: &Path) -> Result<Report> {
 
     // Captured power
     h.push_str("<section id=\"power\"><h2>Captured power</h2>\n");
-    let captured = summary.as_ref().and_then(|s| s.get("captured_power"));
     let mut chart = None;
-    match captured {
-        Some(v) => {
-            let series = per_frame(v);
-            let _ = write!(h, "<p>{}</p>\n", escape(&describe(v)));
-            if series.len() > 1 {
-                let img = line_chart(
-                    &series,
-                    "captured power per frame",
-                    "frame",
-                    "captured power (fraction)",
-                );
-                let bytes = super::canvas::encode_png(&img)?;
-                chart = Some(Png {
-                    name: "captured power per frame (drawn from summary.json)".into(),
-                    bytes,
-                    width: img.width(),
-                    height: img.height(),
-                });
-            }
+    let found: Vec<(&str, &Value)> = CAPTURED_KEYS
+        .iter()
+        .filter_map(|k| summary.as_ref()?.get(*k).map(|v| (*k, v)))
+        .collect();
+    if found.is_empty() {
+        h.push_str("<p class=\"missing\">No captured power in summary.json.</p>\n");
+    } else {
+        h.push_str("<table><tr><th>key</th><th>value</th></tr>\n");
+        for (k, v) in &found {
+            let _ = writeln!(h, "<tr><td>{k}</td><td>{}</td></tr>", escape(&describe(v)));
         }
-        None => h.push_str("<p class=\"missing\">No captured power in summary.json.</p>\n"),
+        h.push_str("</table>\n");
+        let series = found
+            .iter()
+            .map(|(_, v)| per_frame(v))
+            .max_by_key(|s| s.len())
+            .unwrap_or_default();
+        if series.len() > 1 {
+            let img = line_chart(
+                &series,
+                "captured power per frame",
+                "frame",
+                "captured power (fraction)",
+            );
+            let bytes = super::canvas::encode_png(&img)?;
+            chart = Some(Png {
+                name: "captured power per frame (drawn from summary.json)".into(),
+                bytes,
+                width: img.width(),
+                height: img.height(),
+            });
+        }
     }
     if let Some(c) = &chart {
         inc.push(Included {
@@ -212,13 +222,16 @@ pub fn assemble_report(dir: &Path) -> Result<Report> {
         figures(&mut h, &p_other);
         h.push_str("</section>\n");
     }
-    let _ = write!(
+    let _ = writeln!(
         h,
-        "<footer><p class=\"safety\">{}</p><p>Written by modegram {}.</p></footer>\n</body>\n</html>\n",
+        "<footer><p class=\"safety\">{}</p><p>Written by modegram {}.</p></footer>\n</body>\n</html>",
         escape(LASER_SAFETY_NOTE),
         env!("CARGO_PKG_VERSION")
     );
-    Ok(Report { html: h, included: inc })
+    Ok(Report {
+        html: h,
+        included: inc,
+    })
 }
 
 const CSS: &str = "body{font-family:sans-serif;max-width:1250px;margin:1em auto;padding:0 1em;\
@@ -243,7 +256,12 @@ fn read_json(dir: &Path, name: &str, item: &str, inc: &mut Vec<Included>) -> Res
         .map_err(|e| Error::Input(format!("{}: not valid JSON: {e}", dir.join(name).display())))
 }
 
-fn read_text(dir: &Path, name: &str, item: &str, inc: &mut Vec<Included>) -> Result<Option<String>> {
+fn read_text(
+    dir: &Path,
+    name: &str,
+    item: &str,
+    inc: &mut Vec<Included>,
+) -> Result<Option<String>> {
     let path = dir.join(name);
     if !path.is_file() {
         inc.push(Included {
@@ -275,11 +293,9 @@ fn read_pngs(dir: &Path, inc: &mut Vec<Included>) -> Result<Vec<Png>> {
     for name in names {
         let path = dir.join(&name);
         let bytes = std::fs::read(&path).map_err(|e| Error::io(&path, e))?;
-        let dims = image::ImageReader::with_format(
-            std::io::Cursor::new(&bytes),
-            image::ImageFormat::Png,
-        )
-        .into_dimensions();
+        let dims =
+            image::ImageReader::with_format(std::io::Cursor::new(&bytes), image::ImageFormat::Png)
+                .into_dimensions();
         match dims {
             Ok((width, height)) if width > 0 && height > 0 => {
                 inc.push(Included {
@@ -307,10 +323,10 @@ fn read_pngs(dir: &Path, inc: &mut Vec<Included>) -> Result<Vec<Png>> {
 fn figures(h: &mut String, pngs: &[&Png]) {
     for p in pngs {
         let b64 = base64::engine::general_purpose::STANDARD.encode(&p.bytes);
-        let _ = write!(
+        let _ = writeln!(
             h,
             "<figure><img src=\"data:image/png;base64,{b64}\" width=\"{w}\" height=\"{hh}\" \
-             alt=\"{n}\"><figcaption>{n} ({w} × {hh} px)</figcaption></figure>\n",
+             alt=\"{n}\"><figcaption>{n} ({w} × {hh} px)</figcaption></figure>",
             w = p.width,
             hh = p.height,
             n = escape(&p.name)
@@ -355,7 +371,9 @@ fn describe(v: &Value) -> String {
             Some(x) => {
                 let (lo, hi) = x
                     .iter()
-                    .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &y| (a.min(y), b.max(y)));
+                    .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &y| {
+                        (a.min(y), b.max(y))
+                    });
                 let mean = x.iter().sum::<f64>() / x.len() as f64;
                 format!(
                     "{} values: mean {}, min {}, max {}",
@@ -367,7 +385,11 @@ fn describe(v: &Value) -> String {
             }
             None if a.iter().all(|r| numbers(r).is_some()) && !a.is_empty() => {
                 let s = per_frame(v);
-                format!("{} rows; per row mean: {}", a.len(), describe(&Value::from(s)))
+                format!(
+                    "{} rows; per row mean: {}",
+                    a.len(),
+                    describe(&Value::from(s))
+                )
             }
             None => cut(&v.to_string()),
         },
@@ -405,19 +427,44 @@ fn per_frame(v: &Value) -> Vec<f64> {
     v.as_f64().map(|x| vec![x]).unwrap_or_default()
 }
 
+/// Summary keys shown in the captured-power section.
+const CAPTURED_KEYS: &[&str] = &[
+    "captured_power",
+    "captured_power_min",
+    "captured_power_per_frame",
+];
+
 const MERITS: &[(&str, &str, &str)] = &[
     ("insertion_loss_db", "Insertion loss", "dB"),
     ("mode_dependent_loss_db", "Mode-dependent loss", "dB"),
     ("unitarity_error", "Unitarity error", ""),
     ("condition_number", "Condition number", ""),
-    ("group_crosstalk_db", "Group crosstalk", "dB"),
+    (
+        "group_crosstalk_overall_db",
+        "Group crosstalk, overall",
+        "dB",
+    ),
+    (
+        "group_crosstalk_db",
+        "Group crosstalk per input group",
+        "dB",
+    ),
+    (
+        "polarization_crosstalk_overall_db",
+        "Polarisation crosstalk, overall",
+        "dB",
+    ),
+    ("drift_max_abs_rad", "Phase drift, largest", "rad"),
     ("drift_rad", "Phase drift", "rad"),
 ];
 
 fn merit_tables(h: &mut String, s: &Value) {
     h.push_str("<table><tr><th>figure of merit</th><th>value</th><th>unit</th></tr>\n");
     for (key, label, unit) in MERITS {
-        let v = s.get(*key).map(describe).unwrap_or_else(|| "not given".into());
+        let v = s
+            .get(*key)
+            .map(describe)
+            .unwrap_or_else(|| "not given".into());
         let _ = writeln!(
             h,
             "<tr><td>{}</td><td class=\"num\">{}</td><td>{}</td></tr>",
@@ -428,7 +475,13 @@ fn merit_tables(h: &mut String, s: &Value) {
     }
     h.push_str("</table>\n");
     if let Some(sv) = s.get("singular_values").and_then(numbers) {
-        h.push_str("<h3>Singular values</h3><table><tr><th>i</th><th>s_i</th><th>s_i² (dB)</th></tr>\n");
+        let _ = writeln!(
+            h,
+            "<h3>Singular values</h3><details{}><summary>{}</summary>\
+             <table><tr><th>i</th><th>s_i</th><th>s_i² (dB)</th></tr>",
+            if sv.len() <= 12 { " open" } else { "" },
+            escape(&describe(&Value::from(sv.clone())))
+        );
         for (i, x) in sv.iter().enumerate() {
             let _ = writeln!(
                 h,
@@ -437,18 +490,26 @@ fn merit_tables(h: &mut String, s: &Value) {
                 fmt_num(20.0 * x.abs().log10())
             );
         }
-        h.push_str("</table>\n");
+        h.push_str("</table></details>\n");
     }
     if let Some(rows) = s.get("group_power").and_then(Value::as_array) {
         let rows: Option<Vec<Vec<f64>>> = rows.iter().map(numbers).collect();
         if let Some(rows) = rows.filter(|r| !r.is_empty()) {
+            let names: Vec<String> = match s.get("groups").and_then(numbers) {
+                Some(g) if g.len() == rows.len() => g.iter().map(|x| format!("G{x}")).collect(),
+                _ => (1..=rows.len()).map(|i| format!("G{i}")).collect(),
+            };
             h.push_str("<h3>Group power (dB; row: output group, column: input group)</h3><table><tr><th></th>");
             for j in 0..rows[0].len() {
-                let _ = write!(h, "<th>G{}</th>", j + 1);
+                let name = names
+                    .get(j)
+                    .cloned()
+                    .unwrap_or_else(|| format!("G{}", j + 1));
+                let _ = write!(h, "<th>{}</th>", escape(&name));
             }
             h.push_str("</tr>\n");
             for (i, r) in rows.iter().enumerate() {
-                let _ = write!(h, "<tr><th>G{}</th>", i + 1);
+                let _ = write!(h, "<tr><th>{}</th>", escape(&names[i]));
                 for x in r {
                     let _ = write!(h, "<td class=\"num\">{}</td>", fmt_num(10.0 * x.log10()));
                 }
@@ -460,14 +521,23 @@ fn merit_tables(h: &mut String, s: &Value) {
     let known: Vec<&str> = MERITS
         .iter()
         .map(|m| m.0)
-        .chain(["singular_values", "group_power", "captured_power"])
+        .chain(CAPTURED_KEYS.iter().copied())
+        .chain(["singular_values", "group_power", "groups"])
         .collect();
     if let Some(obj) = s.as_object() {
-        let rest: Vec<_> = obj.iter().filter(|(k, _)| !known.contains(&k.as_str())).collect();
+        let rest: Vec<_> = obj
+            .iter()
+            .filter(|(k, _)| !known.contains(&k.as_str()))
+            .collect();
         if !rest.is_empty() {
             h.push_str("<h3>Other summary values</h3><table><tr><th>key</th><th>value</th></tr>\n");
             for (k, v) in rest {
-                let _ = writeln!(h, "<tr><td>{}</td><td>{}</td></tr>", escape(k), escape(&describe(v)));
+                let _ = writeln!(
+                    h,
+                    "<tr><td>{}</td><td>{}</td></tr>",
+                    escape(k),
+                    escape(&describe(v))
+                );
             }
             h.push_str("</table>\n");
         }
@@ -551,7 +621,10 @@ fn calibration_table(h: &mut String, c: &Value) {
             .enumerate()
             .filter(|(_, v)| v.is_object())
             .map(|(i, v)| {
-                let name = v.get("name").map(describe).unwrap_or_else(|| format!("{i}"));
+                let name = v
+                    .get("name")
+                    .map(describe)
+                    .unwrap_or_else(|| format!("{i}"));
                 (name, v)
             })
             .collect(),
@@ -580,7 +653,9 @@ fn calibration_table(h: &mut String, c: &Value) {
             .as_object()
             .map(|o| {
                 o.iter()
-                    .filter(|(k, _)| k.as_str() != "name" && !CAL_KEYS.iter().any(|c| c.0 == k.as_str()))
+                    .filter(|(k, _)| {
+                        k.as_str() != "name" && !CAL_KEYS.iter().any(|c| c.0 == k.as_str())
+                    })
                     .map(|(k, x)| format!("{k}: {}", describe(x)))
                     .collect()
             })
