@@ -38,7 +38,12 @@ pub fn hg_indices(groups: usize) -> Vec<(usize, usize)> {
 }
 
 /// Sample the HG modes `idx` of waist `waist_um` on `grid` at the geometric alignment `a`.
-pub fn sample_hg(grid: &Grid, a: &Alignment, idx: &[(usize, usize)], waist_um: f64) -> Array3<Complex64> {
+pub fn sample_hg(
+    grid: &Grid,
+    a: &Alignment,
+    idx: &[(usize, usize)],
+    waist_um: f64,
+) -> Array3<Complex64> {
     let mut out = Array3::<Complex64>::zeros((idx.len(), grid.ny, grid.nx));
     let s = std::f64::consts::SQRT_2 / waist_um;
     for (k, &(n, m)) in idx.iter().enumerate() {
@@ -54,13 +59,17 @@ pub fn sample_hg(grid: &Grid, a: &Alignment, idx: &[(usize, usize)], waist_um: f
             }
         }
         let f = 1.0 / (norm * grid.pixel_area_um2()).sqrt();
-        out.index_axis_mut(ndarray::Axis(0), k).mapv_inplace(|z| z * f);
+        out.index_axis_mut(ndarray::Axis(0), k)
+            .mapv_inplace(|z| z * f);
     }
     out
 }
 
 /// A sampler closure over the first `groups` HG groups.
-pub fn hg_sampler(groups: usize, waist_um: f64) -> impl Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync {
+pub fn hg_sampler(
+    groups: usize,
+    waist_um: f64,
+) -> impl Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync {
     let idx = hg_indices(groups);
     move |g: &Grid, a: &Alignment| sample_hg(g, a, &idx, waist_um)
 }
@@ -123,7 +132,10 @@ pub fn hg_fields(
         let mut e = vec![Complex64::new(0.0, 0.0); grid.len()];
         for k in 0..nm {
             let c = coef[[f, k]];
-            for (o, b) in e.iter_mut().zip(basis.index_axis(ndarray::Axis(0), k).iter()) {
+            for (o, b) in e
+                .iter_mut()
+                .zip(basis.index_axis(ndarray::Axis(0), k).iter())
+            {
                 *o += c * b;
             }
         }
@@ -151,7 +163,10 @@ mod tests {
     fn hermite_values() {
         // H_3(x) = 8x^3 - 12x (Abramowitz & Stegun table 22.12)
         assert!((hermite(3, 0.7) - (8.0 * 0.343 - 12.0 * 0.7)).abs() < 1e-12);
-        assert_eq!(hg_indices(3), vec![(0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2)]);
+        assert_eq!(
+            hg_indices(3),
+            vec![(0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2)]
+        );
     }
 
     #[test]

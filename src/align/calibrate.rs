@@ -43,7 +43,11 @@ pub fn stack_path(setup: &Setup) -> Result<PathBuf> {
 }
 
 /// Decode `frames` with every channel's tilt and defocus set to zero (geometry kept).
-pub fn decode_raw(setup: &Setup, frames: &[PathBuf], progress: &(dyn Fn(usize) + Sync)) -> Result<RawFields> {
+pub fn decode_raw(
+    setup: &Setup,
+    frames: &[PathBuf],
+    progress: &(dyn Fn(usize) + Sync),
+) -> Result<RawFields> {
     let alignments: Vec<Alignment> = setup
         .channels
         .iter()
@@ -76,13 +80,20 @@ pub fn parse_frames(spec: &str, n: usize) -> Result<Vec<usize>> {
             Some((a, b)) => (a.trim(), b.trim()),
             None => (part, part),
         };
-        let a: usize = a.parse().map_err(|_| bad(format!("{part:?} is not a frame index or range")))?;
-        let b: usize = b.parse().map_err(|_| bad(format!("{part:?} is not a frame index or range")))?;
+        let a: usize = a
+            .parse()
+            .map_err(|_| bad(format!("{part:?} is not a frame index or range")))?;
+        let b: usize = b
+            .parse()
+            .map_err(|_| bad(format!("{part:?} is not a frame index or range")))?;
         if a > b {
             return Err(bad(format!("range {part:?} runs backwards")));
         }
         if b >= n {
-            return Err(bad(format!("frame {b} is past the last frame ({} frames, 0-based)", n)));
+            return Err(bad(format!(
+                "frame {b} is past the last frame ({} frames, 0-based)",
+                n
+            )));
         }
         out.extend(a..=b);
     }
@@ -136,10 +147,21 @@ pub fn calibrate(
             None => f.view(),
         };
         if view.dim().0 == 0 {
-            return Err(Error::Input(format!("channel {}: no frames to fit", ch.name)));
+            return Err(Error::Input(format!(
+                "channel {}: no frames to fit",
+                ch.name
+            )));
         }
         let sampler = |g: &Grid, a: &Alignment| basis.sample(g, a);
-        let fit = fit_channel(view, &raw.grids[c], &ctx, &ch.alignment(), sampler, spec, &|n| progress(c, n));
+        let fit = fit_channel(
+            view,
+            &raw.grids[c],
+            &ctx,
+            &ch.alignment(),
+            sampler,
+            spec,
+            &|n| progress(c, n),
+        );
         out.push(fit);
     }
     Ok(out)
@@ -147,7 +169,11 @@ pub fn calibrate(
 
 /// The calibration.json value: `{name: {center_um, rotation_deg, tilt_mrad, defocus_um,
 /// scale, captured_before, captured_after, uncertainty, ...}}`.
-pub fn calibration_json(setup: &Setup, fits: &[ChannelFit], frames_used: usize) -> serde_json::Value {
+pub fn calibration_json(
+    setup: &Setup,
+    fits: &[ChannelFit],
+    frames_used: usize,
+) -> serde_json::Value {
     let mut m = serde_json::Map::new();
     for (ch, f) in setup.channels.iter().zip(fits) {
         let a = &f.fitted;
@@ -191,7 +217,11 @@ pub fn calibration_json(setup: &Setup, fits: &[ChannelFit], frames_used: usize) 
 
 fn absolute(setup_dir: &Path, p: &str) -> String {
     let pb = Path::new(p);
-    let full = if pb.is_absolute() { pb.to_path_buf() } else { setup_dir.join(pb) };
+    let full = if pb.is_absolute() {
+        pb.to_path_buf()
+    } else {
+        setup_dir.join(pb)
+    };
     std::fs::canonicalize(&full)
         .unwrap_or_else(|_| {
             std::env::current_dir()
@@ -230,10 +260,16 @@ pub fn fitted_toml(setup: &Setup, text: &str, fits: &[ChannelFit]) -> Result<Str
     if let Some(toml::Value::Array(chs)) = doc.get_mut("channel") {
         for ch in chs.iter_mut() {
             let toml::Value::Table(t) = ch else { continue };
-            let Some(toml::Value::String(name)) = t.get("name") else { continue };
-            let Some(i) = setup.channels.iter().position(|c| &c.name == name) else { continue };
+            let Some(toml::Value::String(name)) = t.get("name") else {
+                continue;
+            };
+            let Some(i) = setup.channels.iter().position(|c| &c.name == name) else {
+                continue;
+            };
             let a = fits[i].fitted;
-            let arr = |v: [f64; 2]| toml::Value::Array(vec![toml::Value::Float(v[0]), toml::Value::Float(v[1])]);
+            let arr = |v: [f64; 2]| {
+                toml::Value::Array(vec![toml::Value::Float(v[0]), toml::Value::Float(v[1])])
+            };
             t.insert("center_um".into(), arr(a.center_um));
             t.insert("rotation_deg".into(), toml::Value::Float(a.rotation_deg));
             t.insert("scale".into(), toml::Value::Float(a.scale));
@@ -241,7 +277,8 @@ pub fn fitted_toml(setup: &Setup, text: &str, fits: &[ChannelFit]) -> Result<Str
             t.insert("defocus_um".into(), toml::Value::Float(a.defocus_um));
         }
     }
-    toml::to_string_pretty(&doc).map_err(|e| Error::Input(format!("fitted.toml: cannot write: {e}")))
+    toml::to_string_pretty(&doc)
+        .map_err(|e| Error::Input(format!("fitted.toml: cannot write: {e}")))
 }
 
 #[cfg(test)]
@@ -250,7 +287,10 @@ mod tests {
 
     #[test]
     fn frame_selection_parses_ranges() {
-        assert_eq!(parse_frames("0,5,10-12", 20).unwrap(), vec![0, 5, 10, 11, 12]);
+        assert_eq!(
+            parse_frames("0,5,10-12", 20).unwrap(),
+            vec![0, 5, 10, 11, 12]
+        );
         assert_eq!(parse_frames("3, 1-3", 4).unwrap(), vec![1, 2, 3]);
         let e = parse_frames("0,25", 20).unwrap_err().to_string();
         assert!(e.contains("25") && e.contains("20 frames"), "{e}");

@@ -154,7 +154,15 @@ pub struct Context {
     pub defocus_um: f64,
 }
 
-fn item(ctx: &Context, name: &str, status: Status, value: Option<f64>, threshold: Option<f64>, unit: &str, hint: String) -> Item {
+fn item(
+    ctx: &Context,
+    name: &str,
+    status: Status,
+    value: Option<f64>,
+    threshold: Option<f64>,
+    unit: &str,
+    hint: String,
+) -> Item {
     Item {
         channel: ctx.channel.clone(),
         name: name.into(),
@@ -210,16 +218,36 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
                     th.period_warn_px
                 ),
             };
-            out.push(item(ctx, "fringe_period", st, Some(period), Some(t), "px", hint));
+            out.push(item(
+                ctx,
+                "fringe_period",
+                st,
+                Some(period),
+                Some(t),
+                "px",
+                hint,
+            ));
             // Angle from the nearest pixel axis.
             let off_axis = (angle.rem_euclid(90.0)).min(90.0 - angle.rem_euclid(90.0));
-            let st = if off_axis < th.axis_warn_deg { Status::Warn } else { Status::Pass };
+            let st = if off_axis < th.axis_warn_deg {
+                Status::Warn
+            } else {
+                Status::Pass
+            };
             let hint = if st == Status::Warn {
                 format!("the fringes run {off_axis:.1} deg from a pixel axis: the region-edge streaks along the axes overlap the sideband; rotate the reference tilt to about 30-60 deg")
             } else {
                 format!("carrier at {angle:.1} deg")
             };
-            out.push(item(ctx, "fringe_angle", st, Some(off_axis), Some(th.axis_warn_deg), "deg from axis", hint));
+            out.push(item(
+                ctx,
+                "fringe_angle",
+                st,
+                Some(off_axis),
+                Some(th.axis_warn_deg),
+                "deg from axis",
+                hint,
+            ));
         }
         None => out.push(skipped(ctx, "fringe_period", "px", "no carrier found")),
     }
@@ -240,9 +268,22 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
                     (f - 2.0 * b * th.separation_warn).max(0.0)
                 ),
             };
-            out.push(item(ctx, "separation", st, Some(margin), Some(t), "x (|c|-W)/2B", hint));
+            out.push(item(
+                ctx,
+                "separation",
+                st,
+                Some(margin),
+                Some(t),
+                "x (|c|-W)/2B",
+                hint,
+            ));
         }
-        _ => out.push(skipped(ctx, "separation", "x (|c|-W)/2B", "carrier, window or bandwidth unknown")),
+        _ => out.push(skipped(
+            ctx,
+            "separation",
+            "x (|c|-W)/2B",
+            "carrier, window or bandwidth unknown",
+        )),
     }
     // Fringe visibility from the sideband / DC energy ratio: for uniform beams of
     // intensities s and r, ratio = s r / (s + r)^2 = V^2 / 4 (V = 2 sqrt(s r) / (s + r),
@@ -273,13 +314,25 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             } else {
                 Status::Pass
             };
-            let t = if st == Status::Fail { th.saturation_fail_frac } else { 0.0 };
+            let t = if st == Status::Fail {
+                th.saturation_fail_frac
+            } else {
+                0.0
+            };
             let hint = if st == Status::Pass {
                 "no saturated pixels".into()
             } else {
                 format!("{:.4}% of pixels saturated: reduce the exposure or the beam power by about 20%", 100.0 * s)
             };
-            out.push(item(ctx, "saturation", st, Some(s), Some(t), "fraction", hint));
+            out.push(item(
+                ctx,
+                "saturation",
+                st,
+                Some(s),
+                Some(t),
+                "fraction",
+                hint,
+            ));
         }
         None => out.push(skipped(ctx, "saturation", "fraction", "no frames")),
     }
@@ -292,9 +345,22 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             } else {
                 format!("reference min/max {u:.2} over the signal: expand the reference beam or centre it on the fibre image")
             };
-            out.push(item(ctx, "reference_uniformity", st, Some(u), Some(t), "min/max", hint));
+            out.push(item(
+                ctx,
+                "reference_uniformity",
+                st,
+                Some(u),
+                Some(t),
+                "min/max",
+                hint,
+            ));
         }
-        None => out.push(skipped(ctx, "reference_uniformity", "min/max", "no reference frame (frames.reference)")),
+        None => out.push(skipped(
+            ctx,
+            "reference_uniformity",
+            "min/max",
+            "no reference frame (frames.reference)",
+        )),
     }
     // Signal level.
     match (m.peak_counts, m.full_scale_counts) {
@@ -306,9 +372,22 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             } else {
                 format!("peak {p:.0} of {fs:.0} counts: raise the exposure or power by about {:.0}x (aim at ~70% of full scale)", (0.7 / frac.max(1e-9)).min(1e4))
             };
-            out.push(item(ctx, "signal_level", st, Some(frac), Some(t), "of full scale", hint));
+            out.push(item(
+                ctx,
+                "signal_level",
+                st,
+                Some(frac),
+                Some(t),
+                "of full scale",
+                hint,
+            ));
         }
-        _ => out.push(skipped(ctx, "signal_level", "of full scale", "full scale unknown")),
+        _ => out.push(skipped(
+            ctx,
+            "signal_level",
+            "of full scale",
+            "full scale unknown",
+        )),
     }
     // Centring.
     match m.centroid_um {
@@ -319,13 +398,24 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             let px = |um: f64| um * ctx.magnification / ctx.pixel_pitch_um;
             let dir = |v: f64, axis: &str, neg: &str, pos: &str| -> String {
                 if v > 0.0 {
-                    format!("{:.1} um ({:.1} px) towards -{axis} ({neg} on the camera)", v, px(v))
+                    format!(
+                        "{:.1} um ({:.1} px) towards -{axis} ({neg} on the camera)",
+                        v,
+                        px(v)
+                    )
                 } else {
-                    format!("{:.1} um ({:.1} px) towards +{axis} ({pos} on the camera)", -v, px(-v))
+                    format!(
+                        "{:.1} um ({:.1} px) towards +{axis} ({pos} on the camera)",
+                        -v,
+                        px(-v)
+                    )
                 }
             };
             let hint = if st == Status::Pass {
-                format!("centroid at ({:.2}, {:.2}) um from the region centre", c[0], c[1])
+                format!(
+                    "centroid at ({:.2}, {:.2}) um from the region centre",
+                    c[0], c[1]
+                )
             } else {
                 format!(
                     "the fibre image sits {r:.1} um ({:.0}% of the core radius) off the region centre: move it {} and {}, or shift the region by ({:.0}, {:.0}) px, or set center_um = [{:.2}, {:.2}]",
@@ -338,7 +428,15 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
                     c[1]
                 )
             };
-            out.push(item(ctx, "centring", st, Some(frac), Some(t), "of core radius", hint));
+            out.push(item(
+                ctx,
+                "centring",
+                st,
+                Some(frac),
+                Some(t),
+                "of core radius",
+                hint,
+            ));
         }
         None => out.push(skipped(ctx, "centring", "of core radius", "no field")),
     }
@@ -348,7 +446,11 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             let dof = ctx.wavelength_nm * 1e-3 / (ctx.na * ctx.na);
             let n = dz.abs() / dof;
             let (st, _) = grade_high(n, th.focus_warn_dof, th.focus_fail_dof);
-            let t = if st == Status::Fail { th.focus_fail_dof } else { th.focus_warn_dof } * dof;
+            let t = if st == Status::Fail {
+                th.focus_fail_dof
+            } else {
+                th.focus_warn_dof
+            } * dof;
             let m2 = ctx.magnification * ctx.magnification;
             let hint = if st == Status::Pass {
                 format!("imaged plane {dz:.1} um from the fibre face (depth of focus {dof:.1} um)")
@@ -370,9 +472,22 @@ pub fn evaluate(m: &Measured, ctx: &Context, th: &Thresholds) -> Vec<Item> {
             } else {
                 format!("only {:.1}% of the power in the basis at the setup's alignment: run `modegram calibrate` (or fix the centring / focus items above)", 100.0 * eta)
             };
-            out.push(item(ctx, "captured_power", st, Some(eta), Some(t), "fraction", hint));
+            out.push(item(
+                ctx,
+                "captured_power",
+                st,
+                Some(eta),
+                Some(t),
+                "fraction",
+                hint,
+            ));
         }
-        None => out.push(skipped(ctx, "captured_power", "fraction", "no basis or field")),
+        None => out.push(skipped(
+            ctx,
+            "captured_power",
+            "fraction",
+            "no basis or field",
+        )),
     }
     out
 }
@@ -436,13 +551,23 @@ mod tests {
         let th = Thresholds::default();
         let mut m = good();
         m.carrier_cycles_per_px = Some([0.3, 0.3]); // 2.36 px
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "fringe_period"), Status::Warn);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "fringe_period"),
+            Status::Warn
+        );
         m.carrier_cycles_per_px = Some([0.45, 0.3]); // 1.85 px
         let items = evaluate(&m, &ctx(), &th);
         assert_eq!(status(&items, "fringe_period"), Status::Fail);
-        assert!(items[0].hint.contains("reduce the angle"), "{}", items[0].hint);
+        assert!(
+            items[0].hint.contains("reduce the angle"),
+            "{}",
+            items[0].hint
+        );
         m.carrier_cycles_per_px = Some([0.25, 0.002]);
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "fringe_angle"), Status::Warn);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "fringe_angle"),
+            Status::Warn
+        );
     }
 
     /// Cuche et al. 2000: |c| >= 3B; with the window W around the carrier the DC order
@@ -460,7 +585,10 @@ mod tests {
         assert!((s.value.unwrap() - 0.7).abs() < 1e-12);
         assert!(s.hint.contains("into the DC order"), "{}", s.hint);
         m.carrier_cycles_per_px = Some([0.16, 0.0]); // 1.1
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "separation"), Status::Warn);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "separation"),
+            Status::Warn
+        );
     }
 
     #[test]
@@ -468,9 +596,15 @@ mod tests {
         let th = Thresholds::default();
         let mut m = good();
         m.saturated_fraction = Some(1e-5);
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "saturation"), Status::Warn);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "saturation"),
+            Status::Warn
+        );
         m.saturated_fraction = Some(2e-3);
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "saturation"), Status::Fail);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "saturation"),
+            Status::Fail
+        );
     }
 
     #[test]
@@ -481,11 +615,23 @@ mod tests {
         let c = items.iter().find(|i| i.name == "centring").unwrap();
         // 5.94 um of 25 um = 24%: warn
         assert_eq!(c.status, Status::Warn);
-        assert!(c.hint.contains("3.2 um (11.6 px) towards -x (left on the camera)"), "{}", c.hint);
-        assert!(c.hint.contains("towards +y (down on the camera)"), "{}", c.hint);
+        assert!(
+            c.hint
+                .contains("3.2 um (11.6 px) towards -x (left on the camera)"),
+            "{}",
+            c.hint
+        );
+        assert!(
+            c.hint.contains("towards +y (down on the camera)"),
+            "{}",
+            c.hint
+        );
         assert!(c.hint.contains("center_um = [3.20, -5.00]"), "{}", c.hint);
         m.centroid_um = Some([8.0, 0.0]);
-        assert_eq!(status(&evaluate(&m, &ctx(), &Thresholds::default()), "centring"), Status::Fail);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &Thresholds::default()), "centring"),
+            Status::Fail
+        );
     }
 
     #[test]
@@ -497,7 +643,11 @@ mod tests {
         let f = items.iter().find(|i| i.name == "focus").unwrap();
         assert_eq!(f.status, Status::Warn);
         assert!(f.hint.contains("40.0 um past the fibre face"), "{}", f.hint);
-        assert!(f.hint.contains("camera 16000 um towards the lens"), "{}", f.hint);
+        assert!(
+            f.hint.contains("camera 16000 um towards the lens"),
+            "{}",
+            f.hint
+        );
         m.defocus_um = Some(-100.0);
         let items = evaluate(&m, &ctx(), &Thresholds::default());
         let f = items.iter().find(|i| i.name == "focus").unwrap();
@@ -517,11 +667,16 @@ mod tests {
         let items = evaluate(&m, &ctx(), &th);
         assert_eq!(status(&items, "signal_level"), Status::Warn);
         assert_eq!(status(&items, "visibility"), Status::Fail);
-        assert!(items.iter().any(|i| i.hint.contains("attenuate it by about 50.0x")));
+        assert!(items
+            .iter()
+            .any(|i| i.hint.contains("attenuate it by about 50.0x")));
         assert_eq!(status(&items, "reference_uniformity"), Status::Warn);
         assert_eq!(status(&items, "captured_power"), Status::Fail);
         assert_eq!(worst(&items), Status::Fail);
         m.reference_uniformity = None;
-        assert_eq!(status(&evaluate(&m, &ctx(), &th), "reference_uniformity"), Status::Skip);
+        assert_eq!(
+            status(&evaluate(&m, &ctx(), &th), "reference_uniformity"),
+            Status::Skip
+        );
     }
 }

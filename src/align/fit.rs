@@ -212,7 +212,12 @@ where
 {
     let fields = fields.as_standard_layout();
     let n_modes = sampler(grid, &super::objective::geometry(start)).dim().0;
-    let red = Reduced::new(fields.view(), grid, ctx.wavelength_nm, n_modes + spec.rank_extra);
+    let red = Reduced::new(
+        fields.view(),
+        grid,
+        ctx.wavelength_nm,
+        n_modes + spec.rank_extra,
+    );
     let obj = Objective::new(&red, &sampler);
     let eta = |a: &Alignment| {
         let v = obj.captured(a);
@@ -249,16 +254,34 @@ where
         }
         p
     };
-    let c0 = if spec.center { centroid_um(&power, grid, 0.05) } else { None };
-    let t0 = if spec.tilt { spectral_tilt_mrad(&red, obj.propagator()) } else { None };
+    let c0 = if spec.center {
+        centroid_um(&power, grid, 0.05)
+    } else {
+        None
+    };
+    let t0 = if spec.tilt {
+        spectral_tilt_mrad(&red, obj.propagator())
+    } else {
+        None
+    };
     let mut cands = Vec::new();
     if let Some(c) = c0 {
-        cands.push(Alignment { center_um: c, ..*start });
+        cands.push(Alignment {
+            center_um: c,
+            ..*start
+        });
     }
     if let Some(t) = t0 {
-        cands.push(Alignment { tilt_mrad: t, ..*start });
+        cands.push(Alignment {
+            tilt_mrad: t,
+            ..*start
+        });
         if let Some(c) = c0 {
-            cands.push(Alignment { center_um: c, tilt_mrad: t, ..*start });
+            cands.push(Alignment {
+                center_um: c,
+                tilt_mrad: t,
+                ..*start
+            });
         }
     }
     for c in cands {
@@ -273,7 +296,12 @@ where
     if spec.defocus {
         let d = spec.defocus_range_um.unwrap_or(4.0 * dof);
         let base = best;
-        let f = |z: f64| -eta(&Alignment { defocus_um: z, ..base });
+        let f = |z: f64| {
+            -eta(&Alignment {
+                defocus_um: z,
+                ..base
+            })
+        };
         let n = 17;
         let (z, _) = scan(f, base.defocus_um - d, base.defocus_um + d, n);
         let h = 2.0 * d / (n - 1) as f64;
@@ -298,8 +326,14 @@ where
     let rotation_fitted = match spec.rotation {
         Some(r) => r,
         None => {
-            let e1 = eta(&Alignment { rotation_deg: best.rotation_deg + 5.0, ..best });
-            let e2 = eta(&Alignment { rotation_deg: best.rotation_deg - 5.0, ..best });
+            let e1 = eta(&Alignment {
+                rotation_deg: best.rotation_deg + 5.0,
+                ..best
+            });
+            let e2 = eta(&Alignment {
+                rotation_deg: best.rotation_deg - 5.0,
+                ..best
+            });
             (e1 - best_eta).abs().max((e2 - best_eta).abs()) > 1e-7 * best_eta.abs().max(1e-12)
         }
     };
@@ -374,7 +408,11 @@ where
         }
     }
     let converged = message.is_empty();
-    let captured_after = if converged { exact(&attempted) } else { captured_before };
+    let captured_after = if converged {
+        exact(&attempted)
+    } else {
+        captured_before
+    };
 
     // Uncertainty from the curvature of the residual power.
     let mut uncertainty = Uncertainty::default();
@@ -452,7 +490,10 @@ mod tests {
             })
             .collect();
         let c = centroid_um(&p, &g, 0.01).unwrap();
-        assert!((c[0] - 3.0).abs() < 1e-3 && (c[1] + 2.0).abs() < 1e-3, "{c:?}");
+        assert!(
+            (c[0] - 3.0).abs() < 1e-3 && (c[1] + 2.0).abs() < 1e-3,
+            "{c:?}"
+        );
         assert!(centroid_um(&[0.0; 4], &Grid::centred(2, 2, 1.0), 0.1).is_none());
     }
 
@@ -484,10 +525,16 @@ mod tests {
         let a = ctx().core_radius_um;
         assert!((f.center_um[0] - 2.5).abs() < 0.02 * a, "{f:?}");
         assert!((f.center_um[1] + 1.8).abs() < 0.02 * a, "{f:?}");
-        assert!((f.tilt_mrad[0] - 6.0).abs() < 0.3 && (f.tilt_mrad[1] + 4.0).abs() < 0.2, "{f:?}");
+        assert!(
+            (f.tilt_mrad[0] - 6.0).abs() < 0.3 && (f.tilt_mrad[1] + 4.0).abs() < 0.2,
+            "{f:?}"
+        );
         assert!((f.defocus_um - 15.0).abs() < 0.75, "{f:?}");
         assert!((f.scale - 1.04).abs() < 0.01, "{f:?}");
-        assert!(!fit.rotation_fitted, "complete HG groups do not see rotation");
+        assert!(
+            !fit.rotation_fitted,
+            "complete HG groups do not see rotation"
+        );
         assert!(fit.captured_after > fit.captured_before);
         assert!(fit.captured_after > 0.99, "{}", fit.captured_after);
         let u = fit.uncertainty.center_um.expect("uncertainty");
@@ -549,7 +596,15 @@ mod tests {
             center_um: [0.5, 0.5],
             ..Default::default()
         };
-        let fit = fit_channel(fields.view(), &grid, &ctx(), &start, hg_sampler(2, 5.0), &spec, &|_| {});
+        let fit = fit_channel(
+            fields.view(),
+            &grid,
+            &ctx(),
+            &start,
+            hg_sampler(2, 5.0),
+            &spec,
+            &|_| {},
+        );
         assert!(!fit.converged);
         assert!(!fit.message.is_empty());
         assert_eq!(fit.fitted, start);

@@ -7,9 +7,9 @@
 //! frame or key (frames of the wrong size for the regions are reported by the decoder).
 use super::calibrate::{context, decode_raw};
 use super::check::{evaluate, Context, Item, Measured, Thresholds};
+use super::live::dc_distance;
 use super::measure::{field_centroid_um, quick_defocus, reference_uniformity, sideband_to_dc};
 use super::objective::{captured_per_frame, captured_total, Fft2, Objective, Reduced};
-use super::live::dc_distance;
 use crate::error::Result;
 use crate::frames::{mean_frame, FrameStack};
 use crate::grid::{Alignment, Grid};
@@ -34,7 +34,14 @@ struct RawStats {
     full_scale: Option<f64>,
 }
 
-fn raw_stats(setup: &Setup, frames: &[PathBuf], dark: Option<&[f64]>) -> Result<RawStats> {
+/// Raw statistics; the power spectra are taken over the disc `discs[c]` = (cx, cy, r) in
+/// region pixels (the signal area), so the fringe visibility is that of the signal area.
+fn raw_stats(
+    setup: &Setup,
+    frames: &[PathBuf],
+    dark: Option<&[f64]>,
+    discs: &[(f64, f64, f64)],
+) -> Result<RawStats> {
     let mut stack = FrameStack::open(frames)?;
     let (fw, fh) = (stack.width(), stack.height());
     let full_scale = setup.camera.saturation_counts.or(stack.kind().max_counts());
@@ -52,7 +59,11 @@ fn raw_stats(setup: &Setup, frames: &[PathBuf], dark: Option<&[f64]>) -> Result<
         width: fw,
         full_scale,
     };
-    let ffts: Vec<Fft2> = setup.channels.iter().map(|c| Fft2::new(c.region[3], c.region[2])).collect();
+    let ffts: Vec<Fft2> = setup
+        .channels
+        .iter()
+        .map(|c| Fft2::new(c.region[3], c.region[2]))
+        .collect();
     let mut buf = vec![0f32; fw * fh];
     let mut n = 0usize;
     while stack.read_next(&mut buf)?.is_some() {
@@ -72,7 +83,10 @@ fn raw_stats(setup: &Setup, frames: &[PathBuf], dark: Option<&[f64]>) -> Result<
                         }
                     }
                     let b = dark.map_or(0.0, |d| d[y * fw + x]);
-                    d.push(Complex64::new(v - b, 0.0));
+                    let (cx, cy, r) = discs[c];
+                    let (dx, dy) = ((x - x0) as f64 - cx, (y - y0) as f64 - cy);
+                    let inside = dx * dx + dy * dy <= r * r;
+                    d.push(Complex64::new(if inside { v - b } else { 0.0 }, 0.0));
                 }
             }
             st.pixels[c] += w * h;
@@ -105,7 +119,20 @@ pub fn check_setup(
         Some(p) => Some(mean_frame(&setup.resolve(p))?.0),
         None => None,
     };
-    let stats = raw_stats(setup, frames, dark.as_deref())?;
+    // The signal area of each channel: 1.2 core radii around the expected fibre axis.
+    let discs: Vec<(f64, f64, f64)> = setup
+        .channels
+        .iter()
+        .map(|ch| {
+            let ppu = ch.magnification * ch.scale / setup.camera.pixel_pitch_um;
+            (
+                (ch.region[2] / 2) as f64 + ch.center_um[0] * ppu,
+                (ch.region[3] / 2) as f64 + ch.center_um[1] * ppu,
+                1.2 * basis.core_radius_um * ppu,
+            )
+        })
+        .collect();
+    let stats = raw_stats(setup, frames, dark.as_deref(), &discs)?;
     let reference = match &setup.frames.reference {
         Some(p) => Some(mean_frame(&setup.resolve(p))?.0),
         None => None,
@@ -146,7 +173,11 @@ pub fn check_setup(
                         let (dx, dy) = (x as f64 - cx, y as f64 - cy);
                         if dx * dx + dy * dy <= r_px * r_px {
                             sr += rr[[y, x]];
-                            ss += mean[[y, x]] - rr[[y, x]] - dark.as_ref().map_or(0.0, |d| d[(y0 + y) * stats.width + x0 + x]);
+                            ss += mean[[y, x]]
+                                - rr[[y, x]]
+                                - dark
+                                    .as_ref()
+                                    .map_or(0.0, |d| d[(y0 + y) * stats.width + x0 + x]);
                             n += 1;
                         }
                     }
@@ -161,13 +192,21 @@ pub fn check_setup(
             fields.view(),
             &grid,
             fctx.wavelength_nm,
-            &Alignment { defocus_um: a.defocus_um, ..a },
+            &Alignment {
+                defocus_um: a.defocus_um,
+                ..a
+            },
             sampler,
             4.0 * fctx.depth_of_focus_um(),
             n_modes + 10,
         );
         let captured = {
-            let red = Reduced::new(fields.slice(ndarray::s![..1, .., ..]), &grid, fctx.wavelength_nm, 1);
+            let red = Reduced::new(
+                fields.slice(ndarray::s![..1, .., ..]),
+                &grid,
+                fctx.wavelength_nm,
+                1,
+            );
             let obj = Objective::new(&red, sampler);
             let modes = obj.corrected_modes(&a);
             captured_total(&captured_per_frame(fields.view(), &grid, &modes))
@@ -176,7 +215,12 @@ pub fn check_setup(
             carrier_cycles_per_px: Some(carrier),
             window_radius: Some(window),
             bandwidth: Some(band),
-            sideband_to_dc: Some(sideband_to_dc(stats.power[c].view(), carrier, window, 2.0 * band)),
+            sideband_to_dc: Some(sideband_to_dc(
+                stats.power[c].view(),
+                carrier,
+                window,
+                2.0 * band,
+            )),
             beam_ratio,
             saturated_fraction: (stats.full_scale.is_some() && stats.pixels[c] > 0)
                 .then(|| stats.saturated[c] as f64 / stats.pixels[c] as f64),

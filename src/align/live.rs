@@ -144,7 +144,10 @@ impl LiveChannel {
             fy += w * freq(i / g.nx, g.ny, g.pitch_um);
         }
         let dc = if s > 0.0 {
-            [fx / s * self.camera_fibre_pitch_um, fy / s * self.camera_fibre_pitch_um]
+            [
+                fx / s * self.camera_fibre_pitch_um,
+                fy / s * self.camera_fibre_pitch_um,
+            ]
         } else {
             [0.0, 0.0]
         };
@@ -153,7 +156,13 @@ impl LiveChannel {
         let d_dc = dc_distance(cm);
         // tilt-corrected spectrum
         work.copy_from_slice(field);
-        apply_tilt(&mut work, &g, self.wavelength_nm, self.alignment.tilt_mrad, -1.0);
+        apply_tilt(
+            &mut work,
+            &g,
+            self.wavelength_nm,
+            self.alignment.tilt_mrad,
+            -1.0,
+        );
         self.fft.forward(&mut work, &mut self.scratch);
         let captured = self.captured_at(&work, p, self.alignment.defocus_um);
         let z0 = self.alignment.defocus_um;
@@ -195,12 +204,26 @@ mod tests {
         let basis = sample_hg(&grid, &geometry(&truth), &hg_indices(1), 5.0);
         let mut setup_alignment = truth;
         setup_alignment.defocus_um = 0.0;
-        let mut live = LiveChannel::new(grid, 1064.0, setup_alignment, basis, [0.25, 0.0], 0.08, 0.08, 0.275, 10.0, 60.0);
+        let mut live = LiveChannel::new(
+            grid,
+            1064.0,
+            setup_alignment,
+            basis,
+            [0.25, 0.0],
+            0.08,
+            0.08,
+            0.275,
+            10.0,
+            60.0,
+        );
         let fig = live.measure(f.as_slice().unwrap(), 0.0);
         assert!((fig.focus_um - 40.0).abs() < 0.5, "{fig:?}");
         // HG00 defocused by z keeps 1 / (1 + (z / 2 zR)^2) in HG00 (Siegman 1986, ch. 17)
         let zr = std::f64::consts::PI * 25.0 / 1.064;
-        assert!((fig.captured - 1.0 / (1.0 + (40.0 / (2.0 * zr)).powi(2))).abs() < 2e-3, "{fig:?}");
+        assert!(
+            (fig.captured - 1.0 / (1.0 + (40.0 / (2.0 * zr)).powi(2))).abs() < 2e-3,
+            "{fig:?}"
+        );
         assert!((fig.centring - 0.12).abs() < 0.01, "{fig:?}");
         // tilt 3 mrad = 2.82e-3 cycles/um; x 0.275 um/px = 7.75e-4 cycles/px on the camera
         let want = 1.0 / (0.25 + 3e-3 / 1.064 * 0.275);

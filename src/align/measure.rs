@@ -43,7 +43,12 @@ pub fn disc_energy(power: ArrayView2<f64>, centre: [f64; 2], r: f64) -> f64 {
 
 /// Sideband energy (window of radius `window` around `carrier`) over the DC order's energy
 /// (disc of radius `dc_radius` around 0).
-pub fn sideband_to_dc(power: ArrayView2<f64>, carrier: [f64; 2], window: f64, dc_radius: f64) -> f64 {
+pub fn sideband_to_dc(
+    power: ArrayView2<f64>,
+    carrier: [f64; 2],
+    window: f64,
+    dc_radius: f64,
+) -> f64 {
     let dc = disc_energy(power, [0.0, 0.0], dc_radius);
     if dc <= 0.0 {
         return 0.0;
@@ -53,7 +58,12 @@ pub fn sideband_to_dc(power: ArrayView2<f64>, carrier: [f64; 2], window: f64, dc
 
 /// min / max of `reference` over the disc of radius `radius_px` around pixel `(cx, cy)`
 /// (column, row). None when the disc holds no pixel or the maximum is not positive.
-pub fn reference_uniformity(reference: ArrayView2<f64>, cx: f64, cy: f64, radius_px: f64) -> Option<f64> {
+pub fn reference_uniformity(
+    reference: ArrayView2<f64>,
+    cx: f64,
+    cy: f64,
+    radius_px: f64,
+) -> Option<f64> {
     let (ny, nx) = reference.dim();
     let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
     for r in 0..ny {
@@ -164,7 +174,15 @@ mod tests {
             ..Default::default()
         };
         let (f, _) = hg_fields(&grid, 3, 5.0, &truth, 1064.0, 8, 0.0, 5);
-        let (z, eta) = quick_defocus(f.view(), &grid, 1064.0, &Alignment::default(), hg_sampler(3, 5.0), 60.0, 16);
+        let (z, eta) = quick_defocus(
+            f.view(),
+            &grid,
+            1064.0,
+            &Alignment::default(),
+            hg_sampler(3, 5.0),
+            60.0,
+            16,
+        );
         assert!((z + 20.0).abs() < 0.2, "{z}");
         assert!(eta > 0.999);
     }
@@ -178,6 +196,9 @@ mod tests {
         };
         let (f, _) = hg_fields(&grid, 1, 5.0, &truth, 1064.0, 3, 0.0, 5);
         let c = field_centroid_um(f.view(), &grid).unwrap();
-        assert!((c[0] - 2.0).abs() < 0.01 && (c[1] + 3.0).abs() < 0.01, "{c:?}");
+        assert!(
+            (c[0] - 2.0).abs() < 0.01 && (c[1] + 3.0).abs() < 0.01,
+            "{c:?}"
+        );
     }
 }

@@ -225,7 +225,12 @@ pub struct Reduced {
 
 impl Reduced {
     /// Reduce `fields` (frames x ny x nx) to at most `rank` components.
-    pub fn new(fields: ArrayView3<Complex64>, grid: &Grid, wavelength_nm: f64, rank: usize) -> Reduced {
+    pub fn new(
+        fields: ArrayView3<Complex64>,
+        grid: &Grid,
+        wavelength_nm: f64,
+        rank: usize,
+    ) -> Reduced {
         let (nf, ny, nx) = fields.dim();
         assert_eq!((ny, nx), (grid.ny, grid.nx), "fields must lie on the grid");
         let da = grid.pixel_area_um2();
@@ -242,7 +247,8 @@ impl Reduced {
         if nf <= rank {
             let mut q = Array2::zeros((nf, ny * nx));
             for (i, f) in flat.iter().enumerate() {
-                q.row_mut(i).assign(&ArrayView2::from_shape((1, ny * nx), f).unwrap().row(0));
+                q.row_mut(i)
+                    .assign(&ArrayView2::from_shape((1, ny * nx), f).unwrap().row(0));
             }
             return Reduced {
                 q,
@@ -296,7 +302,11 @@ impl Reduced {
         Reduced {
             q,
             total,
-            retained_fraction: if sum_all > 0.0 { sum_kept / sum_all } else { 1.0 },
+            retained_fraction: if sum_all > 0.0 {
+                sum_kept / sum_all
+            } else {
+                1.0
+            },
             grid: *grid,
             wavelength_nm,
             frames: nf,
@@ -311,11 +321,7 @@ fn captured_sum(modes: &[Vec<Complex64>], q: &Array2<Complex64>, da: f64) -> f64
         .map(|phi| {
             q.axis_iter(Axis(0))
                 .map(|row| {
-                    let s: Complex64 = phi
-                        .iter()
-                        .zip(row.iter())
-                        .map(|(a, b)| a.conj() * b)
-                        .sum();
+                    let s: Complex64 = phi.iter().zip(row.iter()).map(|(a, b)| a.conj() * b).sum();
                     (s * da).norm_sqr()
                 })
                 .sum::<f64>()
@@ -490,7 +496,8 @@ mod tests {
                 let mut d = Complex64::new(0.0, 0.0);
                 for y in 0..ny {
                     for x in 0..nx {
-                        let ph = -2.0 * std::f64::consts::PI
+                        let ph = -2.0
+                            * std::f64::consts::PI
                             * (ky as f64 * y as f64 / ny as f64 + kx as f64 * x as f64 / nx as f64);
                         d += data[y * nx + x] * Complex64::from_polar(1.0, ph);
                     }
@@ -534,7 +541,11 @@ mod tests {
             / p1;
         let zr = std::f64::consts::PI * w0 * w0 / (wl_nm * 1e-3);
         let w = w0 * (1.0 + (z / zr).powi(2)).sqrt();
-        assert!(((2.0 * m2).sqrt() / w - 1.0).abs() < 2e-3, "{} vs {w}", (2.0 * m2).sqrt());
+        assert!(
+            ((2.0 * m2).sqrt() / w - 1.0).abs() < 2e-3,
+            "{} vs {w}",
+            (2.0 * m2).sqrt()
+        );
         // back-propagation restores the waist
         prop.propagate(&mut d, -z, &mut s);
         let c = d[64 * 128 + 64];

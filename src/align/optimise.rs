@@ -172,7 +172,11 @@ pub fn nelder_mead(
             // Shrink towards the best vertex.
             let x0b = simplex[0].0.clone();
             for v in simplex.iter_mut().skip(1) {
-                let mut x: Vec<f64> = x0b.iter().zip(&v.0).map(|(b, a)| b + 0.5 * (a - b)).collect();
+                let mut x: Vec<f64> = x0b
+                    .iter()
+                    .zip(&v.0)
+                    .map(|(b, a)| b + 0.5 * (a - b))
+                    .collect();
                 let fx = eval(&mut x, &mut evals);
                 *v = (x, fx);
             }
@@ -307,7 +311,10 @@ mod tests {
             },
         );
         assert!(m.converged);
-        assert!((m.x[0] - 1.0).abs() < 1e-4 && (m.x[1] - 1.0).abs() < 1e-4, "{m:?}");
+        assert!(
+            (m.x[0] - 1.0).abs() < 1e-4 && (m.x[1] - 1.0).abs() < 1e-4,
+            "{m:?}"
+        );
     }
 
     #[test]
@@ -320,7 +327,13 @@ mod tests {
                 .map(|(i, (a, b))| (i as f64 + 1.0) * (a - b).powi(2))
                 .sum()
         };
-        let m = nelder_mead(f, &[0.0; 5], &[1.0; 5], &Bounds::none(5), &NmOptions::default());
+        let m = nelder_mead(
+            f,
+            &[0.0; 5],
+            &[1.0; 5],
+            &Bounds::none(5),
+            &NmOptions::default(),
+        );
         assert!(m.converged);
         for (a, b) in m.x.iter().zip(&c) {
             assert!((a - b).abs() < 1e-3, "{m:?}");

@@ -27,7 +27,10 @@ pub fn is_frame_file(p: &Path) -> bool {
         .extension()
         .and_then(|e| e.to_str())
         .map(|e| e.to_ascii_lowercase());
-    !hidden && ext.map(|e| FRAME_EXTENSIONS.contains(&e.as_str())).unwrap_or(false)
+    !hidden
+        && ext
+            .map(|e| FRAME_EXTENSIONS.contains(&e.as_str()))
+            .unwrap_or(false)
 }
 
 #[derive(Debug, Clone)]
@@ -60,9 +63,8 @@ pub struct Watcher {
 impl Watcher {
     /// Watch `dir`; an error names the folder when it does not exist or is not a folder.
     pub fn new(dir: &Path, give_up: Duration) -> Result<Watcher> {
-        let md = std::fs::metadata(dir).map_err(|e| {
-            Error::Input(format!("watch folder {}: {e}", dir.display()))
-        })?;
+        let md = std::fs::metadata(dir)
+            .map_err(|e| Error::Input(format!("watch folder {}: {e}", dir.display())))?;
         if !md.is_dir() {
             return Err(Error::Input(format!(
                 "watch folder {}: not a folder",
@@ -165,7 +167,10 @@ impl Watcher {
             self.handled.insert(path.to_path_buf());
             return Some(Incomplete {
                 path: path.to_path_buf(),
-                reason: format!("unchanged for {:.1} s but does not decode: {reason}", self.give_up.as_secs_f64()),
+                reason: format!(
+                    "unchanged for {:.1} s but does not decode: {reason}",
+                    self.give_up.as_secs_f64()
+                ),
             });
         }
         None
@@ -187,7 +192,11 @@ mod tests {
 
     #[test]
     fn missing_folder_is_named() {
-        let e = Watcher::new(Path::new("/nonexistent/frames-here"), Duration::from_secs(1)).unwrap_err();
+        let e = Watcher::new(
+            Path::new("/nonexistent/frames-here"),
+            Duration::from_secs(1),
+        )
+        .unwrap_err();
         assert!(e.to_string().contains("/nonexistent/frames-here"), "{e}");
     }
 

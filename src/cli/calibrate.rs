@@ -2,7 +2,9 @@
 //! calibration.json and fitted.toml (docs/alignment.md). Exit 1 when a fit does not converge
 //! (its channel keeps the starting values in both files).
 use super::{Common, Outcome};
-use crate::align::calibrate::{calibrate, calibration_json, decode_raw, fitted_toml, parse_frames, stack_path};
+use crate::align::calibrate::{
+    calibrate, calibration_json, decode_raw, fitted_toml, parse_frames, stack_path,
+};
 use crate::align::fit::FitSpec;
 use crate::error::{Error, Result};
 use crate::export::OutDir;
@@ -119,7 +121,11 @@ pub fn run(args: &CalibrateArgs) -> Result<Outcome> {
                 format!("{:.2}", a.defocus_um),
                 format!("{:.4}", f.captured_before),
                 format!("{:.4}", f.captured_after),
-                if f.converged { "yes".into() } else { "NO".into() },
+                if f.converged {
+                    "yes".into()
+                } else {
+                    "NO".into()
+                },
             ]
         })
         .collect();

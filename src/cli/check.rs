@@ -71,10 +71,22 @@ pub fn run(args: &CheckArgs) -> Result<Outcome> {
             ]
         })
         .collect();
-    let mut table = super::table(&["channel", "item", "status", "value", "threshold", "unit"], &rows);
+    let mut table = super::table(
+        &["channel", "item", "status", "value", "threshold", "unit"],
+        &rows,
+    );
     table.push('\n');
-    for i in items.iter().filter(|i| i.status == Status::Warn || i.status == Status::Fail) {
-        table.push_str(&format!("{} {} ({}): {}\n", i.channel, i.name, i.status.as_str(), i.hint));
+    for i in items
+        .iter()
+        .filter(|i| i.status == Status::Warn || i.status == Status::Fail)
+    {
+        table.push_str(&format!(
+            "{} {} ({}): {}\n",
+            i.channel,
+            i.name,
+            i.status.as_str(),
+            i.hint
+        ));
     }
     let w = worst(&items);
     let count = |s: Status| items.iter().filter(|i| i.status == s).count();

@@ -73,7 +73,11 @@ struct Live {
 
 impl Live {
     fn new(setup: &Setup, basis: &Basis, first: &Path) -> Result<Live> {
-        let alignments = setup.channels.iter().map(|c| geometry(&c.alignment())).collect();
+        let alignments = setup
+            .channels
+            .iter()
+            .map(|c| geometry(&c.alignment()))
+            .collect();
         let opts = DecodeOptions {
             alignments: Some(alignments),
             ..Default::default()
@@ -103,7 +107,11 @@ impl Live {
         let (width, height) = (stack.width(), stack.height());
         Ok(Live {
             scratch: prepared.plans.iter().map(|p| p.scratch()).collect(),
-            fields: prepared.plans.iter().map(|p| vec![Complex64::new(0.0, 0.0); p.len()]).collect(),
+            fields: prepared
+                .plans
+                .iter()
+                .map(|p| vec![Complex64::new(0.0, 0.0); p.len()])
+                .collect(),
             buf: vec![0f32; width * height],
             prepared,
             channels,
@@ -135,7 +143,10 @@ impl Live {
                 plan.decode(&self.buf, &mut self.scratch[c], &mut self.fields[c]);
                 let [_, _, w, h] = plan.spec.region;
                 let sat = match self.prepared.saturation_counts {
-                    Some(l) => count_saturated(&self.buf, self.width, plan.spec.region, l) as f64 / (w * h) as f64,
+                    Some(l) => {
+                        count_saturated(&self.buf, self.width, plan.spec.region, l) as f64
+                            / (w * h) as f64
+                    }
                     None => 0.0,
                 };
                 figs.push(self.channels[c].measure(&self.fields[c], sat));
@@ -168,11 +179,19 @@ fn line(names: &[String], figs: &[LiveFigures]) -> String {
 pub fn run(args: &WatchArgs) -> Result<Outcome> {
     let setup = Setup::load(&args.setup)?;
     if setup.channels.is_empty() {
-        return Err(Error::setup(setup.file_name(), "channel", "(none)", "define at least one [[channel]]"));
+        return Err(Error::setup(
+            setup.file_name(),
+            "channel",
+            "(none)",
+            "define at least one [[channel]]",
+        ));
     }
     let basis = Basis::from_setup(&setup)?;
     if !(args.give_up_s.is_finite() && args.give_up_s > 0.0) {
-        return Err(Error::Input(format!("--give-up-s {}: must be > 0", args.give_up_s)));
+        return Err(Error::Input(format!(
+            "--give-up-s {}: must be > 0",
+            args.give_up_s
+        )));
     }
     if let Some(t) = args.timeout_s {
         if !(t.is_finite() && t > 0.0) {
@@ -228,19 +247,34 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
                             s.0 += x.captured;
                             s.1 = s.1.min(x.captured);
                         }
-                        let name = path.file_name().map(|n| n.to_string_lossy().to_string()).unwrap_or_default();
+                        let name = path
+                            .file_name()
+                            .map(|n| n.to_string_lossy().to_string())
+                            .unwrap_or_default();
                         if tty {
                             let mut err = std::io::stderr().lock();
                             if block_lines > 0 {
                                 let _ = write!(err, "\x1b[{block_lines}A");
                             }
-                            let _ = writeln!(err, "\x1b[2Kframe {frames} ({name}), {:.1} frames/s", frames as f64 / start.elapsed().as_secs_f64().max(1e-9));
+                            let _ = writeln!(
+                                err,
+                                "\x1b[2Kframe {frames} ({name}), {:.1} frames/s",
+                                frames as f64 / start.elapsed().as_secs_f64().max(1e-9)
+                            );
                             for (n, x) in names.iter().zip(&f) {
-                                let _ = writeln!(err, "\x1b[2K  {}", line(std::slice::from_ref(n), std::slice::from_ref(x)));
+                                let _ = writeln!(
+                                    err,
+                                    "\x1b[2K  {}",
+                                    line(std::slice::from_ref(n), std::slice::from_ref(x))
+                                );
                             }
                             block_lines = 1 + names.len();
                         } else if !args.common.json {
-                            let _ = writeln!(stdout.lock(), "frame {frames} {name} | {}", line(&names, &f));
+                            let _ = writeln!(
+                                stdout.lock(),
+                                "frame {frames} {name} | {}",
+                                line(&names, &f)
+                            );
                         }
                         last = Some(f);
                         if args.max_frames.is_some_and(|m| frames >= m) {
@@ -249,7 +283,9 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
                         }
                     }
                 }
-                Err(e @ Error::Frame { .. }) if e.to_string().contains("pixels, the watched frames") => {
+                Err(e @ Error::Frame { .. })
+                    if e.to_string().contains("pixels, the watched frames") =>
+                {
                     watcher.done(&path);
                     problems.push(e.to_string());
                     super::warn(args.common.quiet, &e.to_string());
@@ -305,7 +341,15 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
         })
         .collect();
     table.push_str(&super::table(
-        &["channel", "mean captured", "min captured", "last period px", "last separation", "last centring", "last focus um"],
+        &[
+            "channel",
+            "mean captured",
+            "min captured",
+            "last period px",
+            "last separation",
+            "last centring",
+            "last focus um",
+        ],
         &rows,
     ));
     for p in &problems {
