@@ -1,0 +1,612 @@
+//! Fitting one channel's alignment to its decoded fields: maximise the captured power
+//! [`Objective::captured`] over centre, rotation, scale, tilt and defocus.
+//!
+//! Contract: [`fit_channel`] takes fields (frames x ny x nx, carrier removed, no tilt or
+//! defocus correction), a geometric basis sampler and a starting alignment, and returns a
+//! [`ChannelFit`]. It never panics on bad data; a fit whose simplex search did not meet its
+//! stopping test, or that ended on a bound, is reported with `converged = false` and
+//! `fitted = start` (the caller decides what to do; the CLI exits 1).
+//!
+//! Strategy (robust first, then precise):
+//! 1. Starting candidates: the given alignment; the centre from the intensity centroid of
+//!    the summed frames; the tilt from the centroid of the summed spatial power spectrum
+//!    (a tilt t shifts the spectrum by t / lambda, docs/conventions.md). The best is kept.
+//! 2. Coarse scans with golden-section refinement of defocus (the basis is sampled once, so
+//!    these cost one inverse FFT per mode) and of scale.
+//! 3. Nelder-Mead on all free parameters in scaled units (see [`optimise`]), with one
+//!    restart.
+//! Rotation is fitted only when the objective depends on it: a basis made of complete
+//! degenerate sets (every LP group with both cos and sin, every HG/LG group whole) captures
+//! the same power at every rotation, since rotation mixes modes within a group only.
+//!
+//! Uncertainty: with S(theta) = total power x (1 - eta) the residual power (counts), and the
+//! residual treated as white noise of variance sigma^2 = S_min / (N - p) per real sample
+//! (N = 2 x pixels x frames, p parameters), the least-squares covariance is
+//! Cov = 2 sigma^2 H^-1, H the finite-difference Hessian of S (Press et al., Numerical
+//! Recipes, 3rd ed., section 15.5). The reported figure is sqrt(diag Cov), one standard
+//! deviation; it ignores model error (light outside the basis counts as noise).
+use super::objective::{captured_per_frame, captured_total, freq, Objective, Reduced};
+use super::optimise::{golden_section, hessian, nelder_mead, scan, Bounds, NmOptions};
+use crate::grid::{Alignment, Grid};
+use ndarray::{Array3, ArrayView3, Axis};
+use num_complex::Complex64;
+use serde::Serialize;
+
+/// What to fit and how hard to try.
+#[derive(Debug, Clone)]
+pub struct FitSpec {
+    pub center: bool,
+    /// None: fit rotation only when the objective depends on it.
+    pub rotation: Option<bool>,
+    pub scale: bool,
+    pub tilt: bool,
+    pub defocus: bool,
+    /// Principal components kept beyond the number of modes.
+    pub rank_extra: usize,
+    /// Half-width of the coarse defocus scan, micrometres; None: 4 lambda / NA^2.
+    pub defocus_range_um: Option<f64>,
+    pub nm: NmOptions,
+}
+
+impl Default for FitSpec {
+    fn default() -> Self {
+        FitSpec {
+            center: true,
+            rotation: None,
+            scale: true,
+            tilt: true,
+            defocus: true,
+            rank_extra: 10,
+            defocus_range_um: None,
+            nm: NmOptions {
+                ftol: 1e-9,
+                xtol: 2e-3,
+                max_evals: 1500,
+                restarts: 1,
+            },
+        }
+    }
+}
+
+/// Physical context of a channel.
+#[derive(Debug, Clone, Copy)]
+pub struct FitContext {
+    pub wavelength_nm: f64,
+    pub core_radius_um: f64,
+    pub na: f64,
+}
+
+impl FitContext {
+    /// Depth of focus lambda / NA^2, micrometres (Born & Wolf, Principles of Optics, 7th ed.,
+    /// section 8.8, order of magnitude of the axial extent of focus).
+    pub fn depth_of_focus_um(&self) -> f64 {
+        self.wavelength_nm * 1e-3 / (self.na * self.na)
+    }
+}
+
+/// One-sigma uncertainties of the fitted values (None: not fitted or not determined).
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct Uncertainty {
+    pub center_um: Option<[f64; 2]>,
+    pub rotation_deg: Option<f64>,
+    pub scale: Option<f64>,
+    pub tilt_mrad: Option<[f64; 2]>,
+    pub defocus_um: Option<f64>,
+}
+
+/// Result of fitting one channel.
+#[derive(Debug, Clone)]
+pub struct ChannelFit {
+    pub start: Alignment,
+    /// The fitted alignment (= start when not converged).
+    pub fitted: Alignment,
+    /// Where the search ended (also when it did not converge).
+    pub attempted: Alignment,
+    /// Captured fraction at the start and at the fit (exact, on every given frame).
+    pub captured_before: f64,
+    pub captured_after: f64,
+    pub uncertainty: Uncertainty,
+    /// Objective evaluations used.
+    pub iterations: usize,
+    pub converged: bool,
+    pub rotation_fitted: bool,
+    /// Why the fit did not converge, empty when it did.
+    pub message: String,
+    /// Part of the fields' power in the kept principal components.
+    pub retained_fraction: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum P {
+    Cx,
+    Cy,
+    Rot,
+    Scale,
+    Tx,
+    Ty,
+    Dz,
+}
+
+fn get(a: &Alignment, p: P) -> f64 {
+    match p {
+        P::Cx => a.center_um[0],
+        P::Cy => a.center_um[1],
+        P::Rot => a.rotation_deg,
+        P::Scale => a.scale,
+        P::Tx => a.tilt_mrad[0],
+        P::Ty => a.tilt_mrad[1],
+        P::Dz => a.defocus_um,
+    }
+}
+
+fn set(a: &mut Alignment, p: P, v: f64) {
+    match p {
+        P::Cx => a.center_um[0] = v,
+        P::Cy => a.center_um[1] = v,
+        P::Rot => a.rotation_deg = v,
+        P::Scale => a.scale = v,
+        P::Tx => a.tilt_mrad[0] = v,
+        P::Ty => a.tilt_mrad[1] = v,
+        P::Dz => a.defocus_um = v,
+    }
+}
+
+/// Intensity centroid (x, y) in um of `power` (row-major on grid), over pixels above
+/// `frac` of the peak (suppresses the bias of a noise floor towards the grid centre).
+pub fn centroid_um(power: &[f64], grid: &Grid, frac: f64) -> Option<[f64; 2]> {
+    let peak = power.iter().cloned().fold(0.0, f64::max);
+    if !(peak > 0.0) {
+        return None;
+    }
+    let (mut s, mut sx, mut sy) = (0.0, 0.0, 0.0);
+    for (i, &p) in power.iter().enumerate() {
+        if p > frac * peak {
+            s += p;
+            sx += p * grid.x_um(i % grid.nx);
+            sy += p * grid.y_um(i / grid.nx);
+        }
+    }
+    (s > 0.0).then(|| [sx / s, sy / s])
+}
+
+/// Tilt (mrad) from the centroid of the spatial power spectrum summed over the components.
+fn spectral_tilt_mrad(red: &Reduced, prop: &super::objective::Propagator) -> Option<[f64; 2]> {
+    let g = &red.grid;
+    let mut acc = vec![0.0; g.len()];
+    let mut scratch = vec![Complex64::new(0.0, 0.0); prop.fft.scratch_len()];
+    for row in red.q.axis_iter(Axis(0)) {
+        let mut d: Vec<Complex64> = row.iter().copied().collect();
+        prop.fft.forward(&mut d, &mut scratch);
+        for (a, z) in acc.iter_mut().zip(&d) {
+            *a += z.norm_sqr();
+        }
+    }
+    let peak = acc.iter().cloned().fold(0.0, f64::max);
+    if !(peak > 0.0) {
+        return None;
+    }
+    let (mut s, mut fx, mut fy) = (0.0, 0.0, 0.0);
+    for (i, &p) in acc.iter().enumerate() {
+        if p > 0.01 * peak {
+            s += p;
+            fx += p * freq(i % g.nx, g.nx, g.pitch_um);
+            fy += p * freq(i / g.nx, g.ny, g.pitch_um);
+        }
+    }
+    let wl_um = red.wavelength_nm * 1e-3;
+    Some([1e3 * wl_um * fx / s, 1e3 * wl_um * fy / s])
+}
+
+/// Fit the alignment of one channel. `progress` is called with the evaluations used so far.
+pub fn fit_channel<S>(
+    fields: ArrayView3<Complex64>,
+    grid: &Grid,
+    ctx: &FitContext,
+    start: &Alignment,
+    sampler: S,
+    spec: &FitSpec,
+    progress: &(dyn Fn(usize) + Sync),
+) -> ChannelFit
+where
+    S: Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync,
+{
+    let fields = fields.as_standard_layout();
+    let n_modes = sampler(grid, &super::objective::geometry(start)).dim().0;
+    let red = Reduced::new(
+        fields.view(),
+        grid,
+        ctx.wavelength_nm,
+        n_modes + spec.rank_extra,
+    );
+    let obj = Objective::new(&red, &sampler);
+    let eta = |a: &Alignment| {
+        let v = obj.captured(a);
+        progress(obj.evaluations.load(std::sync::atomic::Ordering::Relaxed));
+        v
+    };
+    let exact = |a: &Alignment| {
+        let modes = obj.corrected_modes(a);
+        captured_total(&captured_per_frame(fields.view(), grid, &modes))
+    };
+    let captured_before = exact(start);
+
+    // Scaled units: one unit changes the objective by a comparable amount.
+    let a_um = ctx.core_radius_um;
+    let wl_um = ctx.wavelength_nm * 1e-3;
+    let dof = ctx.depth_of_focus_um();
+    let unit = |p: P| match p {
+        P::Cx | P::Cy => 0.05 * a_um,
+        P::Rot => 2.0,
+        P::Scale => 0.02,
+        P::Tx | P::Ty => 1e3 * wl_um / (2.0 * std::f64::consts::PI * a_um),
+        P::Dz => 0.2 * dof,
+    };
+
+    // 1. Starting candidates.
+    let mut best = *start;
+    let mut best_eta = eta(&best);
+    let power: Vec<f64> = {
+        let mut p = vec![0.0; grid.len()];
+        for row in red.q.axis_iter(Axis(0)) {
+            for (a, z) in p.iter_mut().zip(row.iter()) {
+                *a += z.norm_sqr();
+            }
+        }
+        p
+    };
+    let c0 = if spec.center {
+        centroid_um(&power, grid, 0.05)
+    } else {
+        None
+    };
+    let t0 = if spec.tilt {
+        spectral_tilt_mrad(&red, obj.propagator())
+    } else {
+        None
+    };
+    let mut cands = Vec::new();
+    if let Some(c) = c0 {
+        cands.push(Alignment {
+            center_um: c,
+            ..*start
+        });
+    }
+    if let Some(t) = t0 {
+        cands.push(Alignment {
+            tilt_mrad: t,
+            ..*start
+        });
+        if let Some(c) = c0 {
+            cands.push(Alignment {
+                center_um: c,
+                tilt_mrad: t,
+                ..*start
+            });
+        }
+    }
+    for c in cands {
+        let v = eta(&c);
+        if v > best_eta {
+            best = c;
+            best_eta = v;
+        }
+    }
+
+    // 2. Coarse scans with refinement.
+    if spec.defocus {
+        let d = spec.defocus_range_um.unwrap_or(4.0 * dof);
+        let base = best;
+        let f = |z: f64| {
+            -eta(&Alignment {
+                defocus_um: z,
+                ..base
+            })
+        };
+        let n = 17;
+        let (z, _) = scan(f, base.defocus_um - d, base.defocus_um + d, n);
+        let h = 2.0 * d / (n - 1) as f64;
+        let (z, v, _) = golden_section(f, z - h, z + h, 0.02 * unit(P::Dz));
+        if -v > best_eta {
+            best.defocus_um = z;
+            best_eta = -v;
+        }
+    }
+    if spec.scale {
+        let base = best;
+        let f = |s: f64| -eta(&Alignment { scale: s, ..base });
+        let (s, _) = scan(f, base.scale * 0.85, base.scale * 1.15, 7);
+        let (s, v, _) = golden_section(f, s - 0.05 * base.scale, s + 0.05 * base.scale, 1e-3);
+        if -v > best_eta {
+            best.scale = s;
+            best_eta = -v;
+        }
+    }
+
+    // Rotation only when it matters.
+    let rotation_fitted = match spec.rotation {
+        Some(r) => r,
+        None => {
+            let e1 = eta(&Alignment {
+                rotation_deg: best.rotation_deg + 5.0,
+                ..best
+            });
+            let e2 = eta(&Alignment {
+                rotation_deg: best.rotation_deg - 5.0,
+                ..best
+            });
+            (e1 - best_eta).abs().max((e2 - best_eta).abs()) > 1e-7 * best_eta.abs().max(1e-12)
+        }
+    };
+
+    // 3. Simplex on every free parameter.
+    let mut free = Vec::new();
+    if spec.center {
+        free.extend([P::Cx, P::Cy]);
+    }
+    if rotation_fitted {
+        free.push(P::Rot);
+    }
+    if spec.scale {
+        free.push(P::Scale);
+    }
+    if spec.tilt {
+        free.extend([P::Tx, P::Ty]);
+    }
+    if spec.defocus {
+        free.push(P::Dz);
+    }
+    // Bounds: the axis stays on the grid, scale in [0.5, 2], tilt below the grid's Nyquist
+    // angle, defocus within 20 depths of focus of the start.
+    let half_x = grid.nx as f64 * grid.pitch_um / 2.0;
+    let half_y = grid.ny as f64 * grid.pitch_um / 2.0;
+    let tmax = 1e3 * wl_um / (2.0 * grid.pitch_um);
+    let bound = |p: P| -> (f64, f64) {
+        match p {
+            P::Cx => (-half_x, half_x),
+            P::Cy => (-half_y, half_y),
+            P::Rot => (f64::NEG_INFINITY, f64::INFINITY),
+            P::Scale => (0.5, 2.0),
+            P::Tx | P::Ty => (-tmax, tmax),
+            P::Dz => (start.defocus_um - 20.0 * dof, start.defocus_um + 20.0 * dof),
+        }
+    };
+    let to_alignment = |x: &[f64]| {
+        let mut a = best;
+        for (p, v) in free.iter().zip(x) {
+            set(&mut a, *p, v * unit(*p));
+        }
+        a
+    };
+    let x0: Vec<f64> = free.iter().map(|&p| get(&best, p) / unit(p)).collect();
+    let bounds = Bounds {
+        lo: free.iter().map(|&p| bound(p).0 / unit(p)).collect(),
+        hi: free.iter().map(|&p| bound(p).1 / unit(p)).collect(),
+    };
+    let m = nelder_mead(
+        |x| -eta(&to_alignment(x)),
+        &x0,
+        &vec![1.0; free.len()],
+        &bounds,
+        &spec.nm,
+    );
+    let attempted = to_alignment(&m.x);
+    let mut message = String::new();
+    if !m.converged {
+        message = format!(
+            "the simplex search did not settle within {} evaluations",
+            spec.nm.max_evals
+        );
+    }
+    for (i, p) in free.iter().enumerate() {
+        let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
+        if (m.x[i] - lo).abs() < 1e-9 || (m.x[i] - hi).abs() < 1e-9 {
+            message = format!(
+                "{} ran into its bound {} (the pattern may be off the grid, or the start is far off)",
+                name(*p),
+                m.x[i] * unit(*p)
+            );
+        }
+    }
+    let converged = message.is_empty();
+    let captured_after = if converged {
+        exact(&attempted)
+    } else {
+        captured_before
+    };
+
+    // Uncertainty from the curvature of the residual power.
+    let mut uncertainty = Uncertainty::default();
+    if converged && !free.is_empty() {
+        let h: Vec<f64> = vec![0.02; free.len()];
+        let s = |x: &[f64]| red.total * (1.0 - obj.captured(&to_alignment(x)));
+        let hs = hessian(s, &m.x, &h);
+        let n_real = 2.0 * (grid.len() * red.frames) as f64;
+        let s_min = red.total * (1.0 - m.f.abs().min(1.0));
+        let sigma2 = s_min.max(0.0) / (n_real - free.len() as f64).max(1.0);
+        let hm = nalgebra::DMatrix::from_fn(free.len(), free.len(), |i, j| hs[i][j]);
+        if let Some(inv) = hm.clone().cholesky().map(|c| c.inverse()) {
+            let sd = |i: usize| (2.0 * sigma2 * inv[(i, i)]).sqrt() * unit(free[i]);
+            let idx = |p: P| free.iter().position(|&q| q == p);
+            let pair = |a: P, b: P| match (idx(a), idx(b)) {
+                (Some(i), Some(j)) => Some([sd(i), sd(j)]),
+                _ => None,
+            };
+            uncertainty = Uncertainty {
+                center_um: pair(P::Cx, P::Cy),
+                rotation_deg: idx(P::Rot).map(sd),
+                scale: idx(P::Scale).map(sd),
+                tilt_mrad: pair(P::Tx, P::Ty),
+                defocus_um: idx(P::Dz).map(sd),
+            };
+        }
+    }
+    ChannelFit {
+        start: *start,
+        fitted: if converged { attempted } else { *start },
+        attempted,
+        captured_before,
+        captured_after,
+        uncertainty,
+        iterations: obj.evaluations.load(std::sync::atomic::Ordering::Relaxed),
+        converged,
+        rotation_fitted,
+        message,
+        retained_fraction: red.retained_fraction,
+    }
+}
+
+fn name(p: P) -> &'static str {
+    match p {
+        P::Cx => "center_um[0]",
+        P::Cy => "center_um[1]",
+        P::Rot => "rotation_deg",
+        P::Scale => "scale",
+        P::Tx => "tilt_mrad[0]",
+        P::Ty => "tilt_mrad[1]",
+        P::Dz => "defocus_um",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::align::analytic::{hg_fields, hg_indices, hg_sampler, sample_hg};
+
+    fn ctx() -> FitContext {
+        FitContext {
+            wavelength_nm: 1064.0,
+            core_radius_um: 12.0,
+            na: 0.12,
+        }
+    }
+
+    #[test]
+    fn centroid_of_a_shifted_spot() {
+        let g = Grid::centred(32, 32, 1.0);
+        let p: Vec<f64> = (0..g.len())
+            .map(|i| {
+                let (x, y) = (g.x_um(i % 32) - 3.0, g.y_um(i / 32) + 2.0);
+                (-(x * x + y * y) / 8.0).exp()
+            })
+            .collect();
+        let c = centroid_um(&p, &g, 0.01).unwrap();
+        assert!(
+            (c[0] - 3.0).abs() < 1e-3 && (c[1] + 2.0).abs() < 1e-3,
+            "{c:?}"
+        );
+        assert!(centroid_um(&[0.0; 4], &Grid::centred(2, 2, 1.0), 0.1).is_none());
+    }
+
+    /// Recovering a known misalignment from analytic HG fields (the truth is the simulated
+    /// value; tolerances as in the calibrate task: centre within 2% of the core radius,
+    /// tilt and defocus within 5% of the applied value).
+    #[test]
+    fn recovers_known_misalignment_of_hg_fields() {
+        let grid = Grid::centred(64, 64, 0.75);
+        let truth = Alignment {
+            center_um: [2.5, -1.8],
+            rotation_deg: 0.0,
+            scale: 1.04,
+            tilt_mrad: [6.0, -4.0],
+            defocus_um: 15.0,
+        };
+        let (fields, _) = hg_fields(&grid, 3, 5.0, &truth, 1064.0, 24, 0.02, 3);
+        let fit = fit_channel(
+            fields.view(),
+            &grid,
+            &ctx(),
+            &Alignment::default(),
+            hg_sampler(3, 5.0),
+            &FitSpec::default(),
+            &|_| {},
+        );
+        assert!(fit.converged, "{}", fit.message);
+        let f = fit.fitted;
+        let a = ctx().core_radius_um;
+        assert!((f.center_um[0] - 2.5).abs() < 0.02 * a, "{f:?}");
+        assert!((f.center_um[1] + 1.8).abs() < 0.02 * a, "{f:?}");
+        assert!(
+            (f.tilt_mrad[0] - 6.0).abs() < 0.3 && (f.tilt_mrad[1] + 4.0).abs() < 0.2,
+            "{f:?}"
+        );
+        assert!((f.defocus_um - 15.0).abs() < 0.75, "{f:?}");
+        assert!((f.scale - 1.04).abs() < 0.01, "{f:?}");
+        assert!(
+            !fit.rotation_fitted,
+            "complete HG groups do not see rotation"
+        );
+        assert!(fit.captured_after > fit.captured_before);
+        assert!(fit.captured_after > 0.99, "{}", fit.captured_after);
+        let u = fit.uncertainty.center_um.expect("uncertainty");
+        assert!(u[0] > 0.0 && u[0] < 0.2, "{u:?}");
+    }
+
+    /// With an incomplete group (HG_10 without HG_01) the pattern's rotation matters and is
+    /// fitted.
+    #[test]
+    fn fits_rotation_when_the_basis_sees_it() {
+        let grid = Grid::centred(48, 48, 0.75);
+        let idx: Vec<(usize, usize)> = vec![(0, 0), (1, 0), (2, 0)];
+        let truth = Alignment {
+            rotation_deg: 12.0,
+            ..Default::default()
+        };
+        let basis = sample_hg(&grid, &truth, &idx, 5.0);
+        let mut fields = Array3::<Complex64>::zeros((6, 48, 48));
+        for f in 0..6 {
+            for k in 0..3 {
+                let c = Complex64::new(((f * 3 + k) as f64).sin(), ((f + 2 * k) as f64).cos());
+                let mut dst = fields.index_axis_mut(Axis(0), f);
+                dst.zip_mut_with(&basis.index_axis(Axis(0), k), |o, b| *o += c * b);
+            }
+        }
+        let idx2 = idx.clone();
+        let spec = FitSpec {
+            tilt: false,
+            defocus: false,
+            scale: false,
+            ..Default::default()
+        };
+        let fit = fit_channel(
+            fields.view(),
+            &grid,
+            &ctx(),
+            &Alignment::default(),
+            move |g: &Grid, a: &Alignment| sample_hg(g, a, &idx2, 5.0),
+            &spec,
+            &|_| {},
+        );
+        assert!(fit.converged && fit.rotation_fitted, "{fit:?}");
+        let r = fit.fitted.rotation_deg.rem_euclid(180.0);
+        assert!((r - 12.0).abs() < 0.2, "{r}");
+        let _ = hg_indices(1);
+    }
+
+    #[test]
+    fn evaluation_limit_reports_not_converged_and_keeps_start() {
+        let grid = Grid::centred(32, 32, 1.0);
+        let truth = Alignment {
+            center_um: [2.0, 1.0],
+            ..Default::default()
+        };
+        let (fields, _) = hg_fields(&grid, 2, 5.0, &truth, 1064.0, 6, 0.0, 1);
+        let mut spec = FitSpec::default();
+        spec.nm.max_evals = 5;
+        let start = Alignment {
+            center_um: [0.5, 0.5],
+            ..Default::default()
+        };
+        let fit = fit_channel(
+            fields.view(),
+            &grid,
+            &ctx(),
+            &start,
+            hg_sampler(2, 5.0),
+            &spec,
+            &|_| {},
+        );
+        assert!(!fit.converged);
+        assert!(!fit.message.is_empty());
+        assert_eq!(fit.fitted, start);
+    }
+}
