@@ -82,7 +82,7 @@ pub fn lg_beijersbergen(n: u32, m: u32, x: f64, y: f64, w: f64) -> Complex64 {
     let l = n.abs_diff(m);
     let r = x.hypot(y);
     let rad = lg_radial(p, l, r, w) / (2.0 * std::f64::consts::PI).sqrt();
-    let sign = if p % 2 == 0 { 1.0 } else { -1.0 };
+    let sign = if p.is_multiple_of(2) { 1.0 } else { -1.0 };
     let phase = Complex64::new(x, -y) / if r > 0.0 { r } else { 1.0 };
     let az = if r > 0.0 {
         if n >= m {
@@ -191,7 +191,7 @@ pub fn hg_to_lg_matrix(groups: u32, circular: bool) -> Array2<Complex64> {
     let s2 = std::f64::consts::FRAC_1_SQRT_2;
     for (row, &(l, m1, o)) in lg_rows.iter().enumerate() {
         let p = m1 - 1;
-        let sign = if p % 2 == 0 { 1.0 } else { -1.0 };
+        let sign = if p.is_multiple_of(2) { 1.0 } else { -1.0 };
         let plus = beij(p, p + l);
         let minus = beij(p + l, p);
         let mut add = |v: &[(usize, Complex64)], f: Complex64| {
