@@ -19,6 +19,7 @@ pub mod frames;
 pub mod grid;
 pub mod matrix;
 pub mod modes;
+pub mod pipeline;
 pub mod projection;
 pub mod render;
 pub mod setup;

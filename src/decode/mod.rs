@@ -1,1 +1,340 @@
-//! decode stage (in progress).
+//! Off-axis hologram decoding: frames -> complex fields on each channel's decoded grid ->
+//! (optionally) mode coefficients.
+//!
+//! Contract: [`prepare`] builds one [`DecodePlan`] per channel of the setup (carrier given or
+//! found automatically, window radius given or automatic, decoded grid, background and
+//! reference amplitude), collecting warnings about the separation of the orders; errors name
+//! the setup key or the file and frame. [`decode_prepared`] then streams the frames (one
+//! batch at a time, never the whole stack), decodes them in parallel over frames with
+//! per-thread scratch, and projects each channel's fields on its sampled basis with one
+//! matrix product per batch. [`decode_stack`] does both. Signs and normalisation follow
+//! docs/conventions.md; the method is described in docs/decoding.md (Takeda, Ina &
+//! Kobayashi 1982, JOSA 72, 156; Cuche, Marquet & Depeursinge 2000, Appl. Opt. 39, 4070).
+use crate::error::{Error, Result};
+use crate::frames::{mean_frame, FrameStack};
+use crate::grid::{Alignment, Grid};
+use crate::projection::{captured_power, field_power, Projector};
+use crate::setup::Setup;
+use ndarray::{s, Array2, Array3};
+use num_complex::Complex64;
+use rayon::prelude::*;
+use serde::Serialize;
+use std::path::PathBuf;
+
+pub mod carrier;
+pub mod plan;
+mod prepare;
+pub mod window;
+
+pub use plan::{DecodePlan, PlanSpec, RefAmplitude, Scratch};
+pub use prepare::{choose_grid, fibre_bandwidth_cycles_per_px, lowpass_to_grid, prepare};
+
+/// Peak-to-median ratio of the mean |spectrum| below which no sideband is taken as found.
+pub const MIN_SIDEBAND_CONTRAST: f64 = 8.0;
+
+/// What was decided for one channel (written to decode.json).
+#[derive(Debug, Clone, Serialize)]
+pub struct ChannelPlanInfo {
+    pub name: String,
+    pub region: [usize; 4],
+    pub carrier_cycles_per_px: [f64; 2],
+    /// "auto" (found in the frames) or "setup".
+    pub carrier_source: String,
+    /// Peak over median of the mean |spectrum| (auto carrier only).
+    pub carrier_contrast: Option<f64>,
+    pub fringe_period_px: f64,
+    pub window_radius_cycles_per_px: f64,
+    /// Expected fibre output bandwidth NA / (M lambda) * pixel pitch, when NA is known.
+    pub fibre_bandwidth_cycles_per_px: Option<f64>,
+    /// Distance from the window edge to the DC term's edge (negative: overlap).
+    pub separation_margin_cycles_per_px: f64,
+    pub pitch_um: f64,
+    pub nx: usize,
+    pub ny: usize,
+    pub origin_um: [f64; 2],
+    /// Mean reference amplitude |R| (sqrt counts) the field was divided by.
+    pub reference_amplitude: f64,
+    /// "reference frame, pointwise", "reference frame, mean" or "estimated from holograms".
+    pub reference_source: String,
+    pub alignment: Alignment,
+}
+
+impl ChannelPlanInfo {
+    pub fn grid(&self) -> Grid {
+        Grid {
+            nx: self.nx,
+            ny: self.ny,
+            pitch_um: self.pitch_um,
+            origin_um: self.origin_um,
+        }
+    }
+}
+
+/// Options of a decode run.
+#[derive(Debug, Clone, Default)]
+pub struct DecodeOptions {
+    /// Keep every decoded field (memory: frames x pixels x 16 bytes per channel).
+    pub keep_fields: bool,
+    /// Overlap of the sideband with the DC order is an error (also `decode.strict`).
+    pub strict: bool,
+    /// Per-channel alignment replacing the setup's (e.g. zero tilt and defocus for a
+    /// calibrator that fits them on the fields).
+    pub alignments: Option<Vec<Alignment>>,
+    /// Frames decoded per batch (0: four per thread).
+    pub batch_frames: usize,
+}
+
+/// Plans and what was decided for them.
+pub struct Prepared {
+    pub plans: Vec<DecodePlan>,
+    pub channels: Vec<ChannelPlanInfo>,
+    pub warnings: Vec<String>,
+    /// Saturation level in counts (None: float frames without camera.saturation_counts).
+    pub saturation_counts: Option<f64>,
+    /// Frame count of the stack when known up front.
+    pub frame_count: Option<usize>,
+}
+
+/// Result of decoding a stack.
+#[derive(Debug, Clone)]
+pub struct Decoded {
+    /// (frames, channels, modes), modes in basis order.
+    pub coefficients: Array3<Complex64>,
+    /// (frames, channels): sum |c|^2 / field power (0 without a basis).
+    pub captured: Array2<f64>,
+    /// (frames, channels): pixels of the region at or above the saturation level.
+    pub saturated: Array2<usize>,
+    /// (frames, channels): sum |E|^2 dA.
+    pub field_power: Array2<f64>,
+    pub channels: Vec<ChannelPlanInfo>,
+    /// Per channel (frames, ny, nx), with `keep_fields`.
+    pub fields: Option<Vec<Array3<Complex64>>>,
+    pub warnings: Vec<String>,
+}
+
+/// Samples the basis of a channel on its decoded grid at its alignment:
+/// (modes, ny, nx), each mode with sum |psi|^2 dA = 1.
+pub type BasisSampler<'a> = &'a (dyn Fn(&Grid, &Alignment) -> Result<Array3<Complex64>> + Sync);
+
+/// Prepare and decode a stack; see the module header. `progress` is called with the number
+/// of frames done.
+pub fn decode_stack(
+    setup: &Setup,
+    basis: Option<BasisSampler>,
+    frames: &[PathBuf],
+    opts: &DecodeOptions,
+    progress: &(dyn Fn(usize) + Sync),
+) -> Result<Decoded> {
+    let prepared = prepare(setup, frames, opts)?;
+    let projectors = projectors(&prepared, basis)?;
+    decode_prepared(&prepared, &projectors, frames, opts, progress)
+}
+
+/// Sample the basis for every channel at its grid and alignment.
+pub fn projectors(p: &Prepared, basis: Option<BasisSampler>) -> Result<Vec<Projector>> {
+    let Some(b) = basis else {
+        return Ok(Vec::new());
+    };
+    p.channels
+        .iter()
+        .map(|c| {
+            let g = c.grid();
+            let arr = b(&g, &c.alignment)?;
+            Projector::new(arr.view(), &g)
+        })
+        .collect()
+}
+
+struct Batch {
+    fields: Vec<Array2<Complex64>>,
+    coeffs: Vec<Array2<Complex64>>,
+    sat: Vec<usize>,
+    power: Vec<f64>,
+}
+
+/// Decode the frames with prepared plans; `projectors` empty (no basis) or one per channel.
+pub fn decode_prepared(
+    p: &Prepared,
+    projectors: &[Projector],
+    frames: &[PathBuf],
+    opts: &DecodeOptions,
+    progress: &(dyn Fn(usize) + Sync),
+) -> Result<Decoded> {
+    let nch = p.plans.len();
+    if !projectors.is_empty() && projectors.len() != nch {
+        return Err(Error::Input(format!(
+            "{} projectors for {nch} channels",
+            projectors.len()
+        )));
+    }
+    let n_modes = projectors.first().map_or(0, |q| q.n_modes());
+    if projectors.iter().any(|q| q.n_modes() != n_modes) {
+        return Err(Error::Input("channels' bases differ in mode count".into()));
+    }
+    let mut stack = FrameStack::open(frames)?;
+    let (fw, fh) = (stack.width(), stack.height());
+    let threads = rayon::current_num_threads().max(1);
+    let batch = if opts.batch_frames > 0 {
+        opts.batch_frames
+    } else {
+        4 * threads
+    };
+    let npix: Vec<usize> = p.plans.iter().map(|q| q.len()).collect();
+    let mut bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
+    let mut b = Batch {
+        fields: npix.iter().map(|&n| Array2::zeros((batch, n))).collect(),
+        coeffs: (0..nch).map(|_| Array2::zeros((batch, n_modes))).collect(),
+        sat: vec![0; batch * nch],
+        power: vec![0.0; batch * nch],
+    };
+    let chunks = threads.min(batch);
+    let per = batch.div_ceil(chunks);
+    let mut scratch: Vec<Vec<Scratch>> = (0..chunks)
+        .map(|_| p.plans.iter().map(|q| q.scratch()).collect())
+        .collect();
+    let cap = p.frame_count.unwrap_or(0);
+    let mut coef: Vec<Complex64> = Vec::with_capacity(cap * nch * n_modes);
+    let mut sat_all: Vec<usize> = Vec::with_capacity(cap * nch);
+    let mut pow_all: Vec<f64> = Vec::with_capacity(cap * nch);
+    let mut cap_all: Vec<f64> = Vec::with_capacity(cap * nch);
+    let mut kept: Vec<Vec<Complex64>> = vec![Vec::new(); if opts.keep_fields { nch } else { 0 }];
+    let mut done = 0usize;
+    loop {
+        let mut n = 0;
+        while n < batch {
+            if stack.read_next(&mut bufs[n])?.is_none() {
+                break;
+            }
+            n += 1;
+        }
+        if n == 0 {
+            break;
+        }
+        decode_batch(p, &bufs[..n], &mut b, &mut scratch, per, fw);
+        if !projectors.is_empty() {
+            b.coeffs
+                .par_iter_mut()
+                .zip(b.fields.par_iter())
+                .zip(projectors.par_iter())
+                .for_each(|((c, f), q)| {
+                    q.project_into(f.slice(s![..n, ..]), c.slice_mut(s![..n, ..]));
+                });
+        }
+        for i in 0..n {
+            for ch in 0..nch {
+                let c = b.coeffs[ch].row(i);
+                let pw = b.power[i * nch + ch];
+                coef.extend(c.iter());
+                sat_all.push(b.sat[i * nch + ch]);
+                pow_all.push(pw);
+                cap_all.push(if n_modes > 0 {
+                    captured_power(c.as_slice().unwrap_or(&c.to_vec()), pw)
+                } else {
+                    0.0
+                });
+                if opts.keep_fields {
+                    kept[ch].extend(b.fields[ch].row(i).iter());
+                }
+            }
+        }
+        done += n;
+        progress(done);
+    }
+    let frames_n = done;
+    let shape2 = (frames_n, nch);
+    let err = |e: ndarray::ShapeError| Error::Input(format!("internal shape error: {e}"));
+    let fields = if opts.keep_fields {
+        Some(
+            kept.into_iter()
+                .zip(&p.plans)
+                .map(|(v, q)| {
+                    let (nx, ny) = q.spec.grid_px;
+                    Array3::from_shape_vec((frames_n, ny, nx), v).map_err(err)
+                })
+                .collect::<Result<Vec<_>>>()?,
+        )
+    } else {
+        None
+    };
+    Ok(Decoded {
+        coefficients: Array3::from_shape_vec((frames_n, nch, n_modes), coef).map_err(err)?,
+        captured: Array2::from_shape_vec(shape2, cap_all).map_err(err)?,
+        saturated: Array2::from_shape_vec(shape2, sat_all).map_err(err)?,
+        field_power: Array2::from_shape_vec(shape2, pow_all).map_err(err)?,
+        channels: p.channels.clone(),
+        fields,
+        warnings: p.warnings.clone(),
+    })
+}
+
+/// Decode `bufs` into the batch's field rows, in parallel over `per`-frame chunks, each chunk
+/// with its own scratch (deterministic for any thread count).
+fn decode_batch(
+    p: &Prepared,
+    bufs: &[Vec<f32>],
+    b: &mut Batch,
+    scratch: &mut [Vec<Scratch>],
+    per: usize,
+    fw: usize,
+) {
+    let nch = p.plans.len();
+    let n = bufs.len();
+    // Per chunk: for each channel the mutable rows of that chunk.
+    let mut field_chunks: Vec<Vec<&mut [Complex64]>> =
+        (0..scratch.len()).map(|_| Vec::new()).collect();
+    for f in b.fields.iter_mut() {
+        let cols = f.ncols();
+        let flat = f.as_slice_mut().expect("batch arrays are contiguous");
+        for (c, part) in flat[..n * cols].chunks_mut(per * cols).enumerate() {
+            field_chunks[c].push(part);
+        }
+    }
+    let sat_chunks = b.sat[..n * nch].chunks_mut(per * nch);
+    let pow_chunks = b.power[..n * nch].chunks_mut(per * nch);
+    bufs.par_chunks(per)
+        .zip(scratch.par_iter_mut())
+        .zip(field_chunks.into_par_iter())
+        .zip(sat_chunks.collect::<Vec<_>>().into_par_iter())
+        .zip(pow_chunks.collect::<Vec<_>>().into_par_iter())
+        .for_each(|((((frames, scr), mut outs), sat), pow)| {
+            for (i, frame) in frames.iter().enumerate() {
+                for (ch, plan) in p.plans.iter().enumerate() {
+                    let npx = plan.len();
+                    let out = &mut outs[ch][i * npx..(i + 1) * npx];
+                    plan.decode(frame, &mut scr[ch], out);
+                    pow[i * nch + ch] = field_power(out, &plan.grid);
+                    sat[i * nch + ch] = match p.saturation_counts {
+                        Some(level) => count_saturated(frame, fw, plan.spec.region, level),
+                        None => 0,
+                    };
+                }
+            }
+        });
+}
+
+/// Pixels of `region` at or above `level`.
+pub fn count_saturated(frame: &[f32], fw: usize, region: [usize; 4], level: f64) -> usize {
+    let [x0, y0, w, h] = region;
+    let level = level as f32;
+    (0..h)
+        .map(|y| {
+            frame[(y0 + y) * fw + x0..][..w]
+                .iter()
+                .filter(|&&v| v >= level)
+                .count()
+        })
+        .sum()
+}
+
+/// Read the mean of a dark or reference file and check its size against the frames.
+pub(crate) fn background_file(path: &std::path::Path, fw: usize, fh: usize) -> Result<Vec<f64>> {
+    let (v, w, h) = mean_frame(path)?;
+    if (w, h) != (fw, fh) {
+        return Err(Error::frame(
+            path,
+            Some(0),
+            format!("frame is {w}x{h} pixels, the holograms {fw}x{fh}"),
+        ));
+    }
+    Ok(v)
+}
