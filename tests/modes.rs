@@ -310,3 +310,381 @@ fn tabulated_parabola_matches_graded_profile() {
         assert!((x.b.unwrap() - y.b.unwrap()).abs() < 1e-4, "{}", x.label);
     }
 }
+
+// ---- analytic bases ----------------------------------------------------------------------
+
+#[test]
+fn hg_to_lg_coefficients_match_beijersbergen_example() {
+    // Beijersbergen et al. 1993, Opt. Commun. 96, 123: LG_{1,0} = (HG_10 - i HG_01)/sqrt 2.
+    let c = modes::hg_to_lg_coefficients(1, 0);
+    let s = std::f64::consts::FRAC_1_SQRT_2;
+    assert!((c[0] - Complex64::new(s, 0.0)).norm() < 1e-15);
+    assert!((c[1] - Complex64::new(0.0, -s)).norm() < 1e-15);
+    // pointwise: LG_{n,m} = sum_k c_k HG_{N-k,k} for N <= 4
+    let w = 3.0;
+    for n in 0..=4u32 {
+        for m in 0..=(4 - n) {
+            let c = modes::hg_to_lg_coefficients(n, m);
+            for &(x, y) in &[(0.7, -1.3), (2.1, 0.4), (-3.0, 2.2), (0.0, 0.0)] {
+                let lg = analytic::lg_beijersbergen(n, m, x, y, w);
+                let sum: Complex64 = c
+                    .iter()
+                    .enumerate()
+                    .map(|(k, ck)| {
+                        ck * analytic::hg_beijersbergen(n + m - k as u32, k as u32, x, y, w)
+                    })
+                    .sum();
+                assert!((lg - sum).norm() < 1e-12, "n={n} m={m} at ({x},{y})");
+            }
+        }
+    }
+}
+
+fn gaussian_setup(kind: &str, groups: u32, circular: bool) -> Setup {
+    let text = format!(
+        "version = 1\n[light]\nwavelength_nm = 1550.0\n[camera]\npixel_pitch_um = 5.5\n\
+         [fiber]\nprofile = \"graded\"\ncore_radius_um = 25.0\nna = 0.2\n\
+         [basis]\nkind = \"{kind}\"\ngroups = {groups}\nwaist_um = 5.0\ncircular = {circular}\n"
+    );
+    setup_text(&text).unwrap()
+}
+
+#[test]
+fn sampled_lg_equals_hg_sum_with_unitary_matrix() {
+    // Beijersbergen et al. 1993 change of basis, numerically on a sampled grid (N <= 4):
+    // LG_i = sum_j T_ij HG_j to 1e-10, and T is unitary.
+    let grid = Grid::centred(160, 160, 0.25);
+    let align = Alignment {
+        center_um: [0.3, -0.2],
+        rotation_deg: 20.0,
+        ..Default::default()
+    };
+    let hg = Basis::from_setup(&gaussian_setup("hg", 5, false)).unwrap();
+    let shg = hg.sample(&grid, &align);
+    for circular in [true, false] {
+        let lg = Basis::from_setup(&gaussian_setup("lg", 5, circular)).unwrap();
+        assert_eq!(lg.len(), 15);
+        let slg = lg.sample(&grid, &align);
+        let t = modes::hg_to_lg_matrix(5, circular);
+        let tt = t.dot(&t.t().mapv(|z| z.conj()));
+        for ((i, j), z) in tt.indexed_iter() {
+            let want = if i == j { 1.0 } else { 0.0 };
+            assert!((z - want).norm() < 1e-12, "T T^H [{i},{j}] = {z}");
+        }
+        let mut worst: f64 = 0.0;
+        for i in 0..lg.len() {
+            for (idx, z) in slg.index_axis(ndarray::Axis(0), i).indexed_iter() {
+                let mut s = Complex64::new(0.0, 0.0);
+                for j in 0..hg.len() {
+                    s += t[[i, j]] * shg[[j, idx.0, idx.1]];
+                }
+                worst = worst.max((z - s).norm());
+            }
+        }
+        assert!(worst < 1e-10, "circular={circular}: {worst}");
+    }
+}
+
+// ---- sampling and Gram matrix -----------------------------------------------------------
+
+fn om4() -> Basis {
+    let text = "version = 1\n[light]\nwavelength_nm = 1550.0\n[camera]\npixel_pitch_um = 5.5\n\
+                [fiber]\nprofile = \"graded\"\ncore_radius_um = 25.0\nna = 0.2\n";
+    Basis::from_setup(&setup_text(text).unwrap()).unwrap()
+}
+
+#[test]
+fn sampled_basis_is_orthonormal_on_adequate_grid() {
+    // Orthonormality of guided modes (any fibre-optics text; common practice, no source):
+    // Gram deviation < 1e-3 on a grid 4 core radii across at a/50.
+    let b = om4();
+    let grid = Grid::centred(200, 200, 0.5);
+    let s = b.sample(&grid, &Alignment::default());
+    let dev = modes::gram_deviation(&modes::gram(&s, &grid));
+    assert!(dev < 1e-3, "{dev}");
+    assert!(modes::sampling_warning(dev, &grid, &b).is_none());
+    // step fibre (exact fields) too
+    let st = Basis::from_setup(&setup_v("step", 8.0, "")).unwrap();
+    let grid = Grid::centred(160, 160, 0.25);
+    let s = st.sample(&grid, &Alignment::default());
+    let dev = modes::gram_deviation(&modes::gram(&s, &grid));
+    assert!(dev < 1e-3, "step: {dev}");
+}
+
+#[test]
+fn coarse_grid_triggers_the_warning() {
+    // Too coarse (pitch a/4) and too small (half a core radius): not orthonormal.
+    let b = om4();
+    let grid = Grid::centred(24, 24, 6.0);
+    let s = b.sample(&grid, &Alignment::default());
+    let dev = modes::gram_deviation(&modes::gram(&s, &grid));
+    let msg = modes::sampling_warning(dev, &grid, &b).expect("warning");
+    assert!(msg.contains("24x24") && msg.contains("pitch"), "{msg}");
+    let grid = Grid::centred(40, 40, 0.5);
+    let s = b.sample(&grid, &Alignment::default());
+    let dev = modes::gram_deviation(&modes::gram(&s, &grid));
+    assert!(
+        modes::sampling_warning(dev, &grid, &b).is_some(),
+        "small grid: {dev}"
+    );
+}
+
+#[test]
+fn sample_agrees_with_pointwise_eval() {
+    // Fast sampling path vs the plain per-point evaluation (slow twin), under an alignment.
+    let b = Basis::from_setup(&setup_v("graded", 12.0, "[basis]\ncircular = true\n")).unwrap();
+    let grid = Grid::centred(64, 48, 0.6);
+    let align = Alignment {
+        center_um: [1.5, -2.0],
+        rotation_deg: 33.0,
+        scale: 1.1,
+        ..Default::default()
+    };
+    let s = b.sample(&grid, &align);
+    for k in 0..b.len() {
+        let mut norm = 0.0;
+        let mut direct = Vec::new();
+        for row in 0..grid.ny {
+            for col in 0..grid.nx {
+                let (u, v) = align.to_fibre(grid.x_um(col), grid.y_um(row));
+                let z = b.eval(k, u, v);
+                norm += z.norm_sqr() * grid.pixel_area_um2();
+                direct.push(z);
+            }
+        }
+        let f = 1.0 / norm.sqrt();
+        for (i, z) in direct.iter().enumerate() {
+            let got = s[[k, i / grid.nx, i % grid.nx]];
+            assert!((got - z * f).norm() < 1e-9, "mode {k} px {i}");
+        }
+    }
+}
+
+#[test]
+fn eval_is_continuum_normalised() {
+    // integral |psi|^2 dA = 1 (docs/conventions.md), by a fine midpoint sum.
+    let b = Basis::from_setup(&setup_v("step", 5.0, "")).unwrap();
+    let pitch = 0.1;
+    let n = 600;
+    for k in 0..b.len() {
+        let mut s = 0.0;
+        for i in 0..n {
+            for j in 0..n {
+                let x = (i as f64 - n as f64 / 2.0 + 0.5) * pitch;
+                let y = (j as f64 - n as f64 / 2.0 + 0.5) * pitch;
+                s += b.eval(k, x, y).norm_sqr() * pitch * pitch;
+            }
+        }
+        assert!((s - 1.0).abs() < 2e-3, "mode {k}: {s}");
+    }
+}
+
+#[test]
+fn rotation_turns_cos_mode_into_sin_mode() {
+    // docs/conventions.md: rotation_deg turns the pattern from +x towards +y, so LP11 cos
+    // rotated by 90 degrees is LP11 sin (cos(phi - pi/2) = sin phi).
+    let b = Basis::from_setup(&setup_v("step", 4.0, "")).unwrap();
+    let grid = Grid::centred(64, 64, 0.6);
+    let rot = Alignment {
+        rotation_deg: 90.0,
+        ..Default::default()
+    };
+    let s0 = b.sample(&grid, &Alignment::default());
+    let s1 = b.sample(&grid, &rot);
+    let (kc, ks) = (1, 2);
+    assert_eq!(b.modes[kc].orientation, Orientation::Cos);
+    assert_eq!(b.modes[ks].orientation, Orientation::Sin);
+    for r in 0..64 {
+        for c in 0..64 {
+            assert!((s1[[kc, r, c]] - s0[[ks, r, c]]).norm() < 1e-9);
+        }
+    }
+    // and the sign convention: the radial function is positive at its first extremum, so
+    // LP11 cos is positive on +x
+    assert!(s0[[kc, 32, 40]].re > 0.0);
+}
+
+#[test]
+fn sampling_is_deterministic_across_thread_counts() {
+    // Same output for any thread count (shared/STYLE.md).
+    let b = om4();
+    let grid = Grid::centred(48, 48, 1.2);
+    let one = rayon::ThreadPoolBuilder::new()
+        .num_threads(1)
+        .build()
+        .unwrap();
+    let a = one.install(|| b.sample(&grid, &Alignment::default()));
+    let c = b.sample(&grid, &Alignment::default());
+    assert_eq!(a, c);
+}
+
+// ---- bad input --------------------------------------------------------------------------
+
+const GOOD: &str = "version = 1\n[light]\nwavelength_nm = 1550.0\n[camera]\npixel_pitch_um = 5.5\n\
+                    [fiber]\nprofile = \"step\"\ncore_radius_um = 4.0\nna = 0.12\n";
+
+fn basis_error(text: &str) -> String {
+    match setup_text(text) {
+        Err(e) => e.to_string(),
+        Ok(s) => Basis::from_setup(&s).unwrap_err().to_string(),
+    }
+}
+
+#[test]
+fn bad_fibre_values_are_named() {
+    let cases = [
+        (GOOD.replace("na = 0.12", "na = 1.5"), "fiber.na", "1.5"),
+        (
+            GOOD.replace("core_radius_um = 4.0", "core_radius_um = 0.0"),
+            "fiber.core_radius_um",
+            "0",
+        ),
+        (
+            GOOD.replace("core_radius_um = 4.0", "core_radius_um = -2.0"),
+            "fiber.core_radius_um",
+            "-2",
+        ),
+        (
+            GOOD.replace("wavelength_nm = 1550.0", "wavelength_nm = 0.0"),
+            "light.wavelength_nm",
+            "0",
+        ),
+        (
+            GOOD.replace("wavelength_nm = 1550.0", "wavelength_nm = nan"),
+            "light.wavelength_nm",
+            "NaN",
+        ),
+        (format!("{GOOD}mystery = 2\n"), "mystery", ""),
+        // a basis that keeps no mode: every mode near cut-off and dropped
+        (
+            format!("{GOOD}cutoff_margin_b = 0.4\n[basis]\ndrop_near_cutoff = true\n")
+                .replace("na = 0.12", "na = 0.02"),
+            "fiber.na",
+            "0.02",
+        ),
+    ];
+    for (text, key, value) in cases {
+        let e = basis_error(&text);
+        assert!(
+            e.contains(key) && e.contains(value),
+            "want {key} = {value}: {e}"
+        );
+    }
+}
+
+fn table_error(csv: &str) -> String {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("prof.csv"), csv).unwrap();
+    let text = "version = 1\n[light]\nwavelength_nm = 1550.0\n[camera]\npixel_pitch_um = 5.5\n\
+                [fiber]\nprofile = \"table\"\ntable = \"prof.csv\"\n";
+    let s = Setup::from_toml(text, &d.path().join("s.toml")).unwrap();
+    Basis::from_setup(&s).unwrap_err().to_string()
+}
+
+#[test]
+fn bad_tables_name_file_row_and_value() {
+    let e = table_error("radius_um,index\n0,1.46\n1,1.46\n2,1.455\n1.5,1.45\n3,1.444\n4,1.444\n");
+    assert!(
+        e.contains("fiber.table")
+            && e.contains("prof.csv")
+            && e.contains("line 5")
+            && e.contains("1.5"),
+        "{e}"
+    );
+    let e = table_error("radius_um,index\n0,1.46\n1,1.46\n2,1.444\n");
+    assert!(
+        e.contains("fiber.table") && e.contains("3 data rows"),
+        "{e}"
+    );
+    let e = table_error("radius_um,index\n0,1.46\n1,abc\n2,1.444\n3,1.444\n4,1.444\n");
+    assert!(e.contains("line 3") && e.contains("abc"), "{e}");
+    let e = table_error("r,n\n0,1.46\n1,1.46\n2,1.444\n3,1.444\n4,1.444\n");
+    assert!(e.contains("header"), "{e}");
+    // no index above the cladding: guides nothing
+    let e = table_error("radius_um,index\n0,1.444\n1,1.444\n2,1.444\n3,1.444\n4,1.444\n");
+    assert!(
+        e.contains("fiber.table") && e.contains("guides no mode"),
+        "{e}"
+    );
+}
+
+#[test]
+fn modes_command_rejects_bad_setup_with_exit_2() {
+    // Exit codes (shared/interface.md): 2 on bad input.
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("s.toml");
+    std::fs::write(&p, GOOD.replace("na = 0.12", "na = 2.0")).unwrap();
+    let out = assert_cmd::Command::cargo_bin("modegram")
+        .unwrap()
+        .args([
+            "modes",
+            p.to_str().unwrap(),
+            "--out",
+            d.path().join("o").to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("fiber.na") && err.contains('2'), "{err}");
+}
+
+#[test]
+fn modes_command_writes_outputs() {
+    // shared/interface.md: modes.json, basis.npy (modes, ny, nx), basis.json, gallery.png.
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("s.toml");
+    std::fs::write(&p, GOOD.replace("na = 0.12", "na = 0.2")).unwrap();
+    let o = d.path().join("o");
+    let run = |force: bool| {
+        let mut c = assert_cmd::Command::cargo_bin("modegram").unwrap();
+        c.args([
+            "modes",
+            p.to_str().unwrap(),
+            "--out",
+            o.to_str().unwrap(),
+            "--grid-px",
+            "64",
+            "--json",
+        ]);
+        if force {
+            c.arg("--force");
+        }
+        c.output().unwrap()
+    };
+    let out = run(false);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let summary: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let n = summary["n_modes"].as_u64().unwrap() as usize;
+    let mj: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(o.join("modes.json")).unwrap()).unwrap();
+    let list = mj["modes"].as_array().unwrap();
+    assert_eq!(list.len(), n);
+    for key in ["index", "label", "l", "m", "orientation", "group", "neff"] {
+        assert!(list[0].get(key).is_some(), "modes.json lacks {key}");
+    }
+    assert_eq!(list[0]["label"], "LP01");
+    assert_eq!(list[0]["orientation"], "cos");
+    let a: ndarray::Array3<Complex64> = modegram::export::read_npy(&o.join("basis.npy")).unwrap();
+    assert_eq!(a.dim(), (n, 64, 64));
+    let bj: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(o.join("basis.json")).unwrap()).unwrap();
+    let pitch = bj["pitch_um"].as_f64().unwrap();
+    let p0: f64 = a
+        .index_axis(ndarray::Axis(0), 0)
+        .iter()
+        .map(|z| z.norm_sqr())
+        .sum::<f64>()
+        * pitch
+        * pitch;
+    assert!((p0 - 1.0).abs() < 1e-12);
+    assert!(o.join("gallery.png").exists());
+    // refuses to overwrite without --force, with exit 2
+    assert_eq!(run(false).status.code(), Some(2));
+    assert_eq!(run(true).status.code(), Some(0));
+}

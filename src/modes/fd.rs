@@ -50,6 +50,7 @@ pub struct RadialGrid {
     /// -(flux part) diagonal and off-diagonal of the symmetrised Laplacian.
     lap_diag: Vec<f64>,
     lap_off: Vec<f64>,
+    lap_off2: Vec<f64>,
     /// rho_{N-1/2} / (h^2 rho_{N-1}): coefficient of the outer ghost coupling.
     edge_coupling: f64,
 }
@@ -70,16 +71,18 @@ impl RadialGrid {
                 (rp + rm) / (h2 * rho[i])
             })
             .collect();
-        let lap_off = (0..n.saturating_sub(1))
+        let lap_off: Vec<f64> = (0..n.saturating_sub(1))
             .map(|i| -((i as f64 + 1.0) * h) / (h2 * (rho[i] * rho[i + 1]).sqrt()))
             .collect();
         let edge_coupling = (n as f64 * h) / (h2 * rho[n - 1]);
+        let lap_off2 = lap_off.iter().map(|e: &f64| e * e).collect();
         RadialGrid {
             h,
             rho,
             f: fv,
             lap_diag,
             lap_off,
+            lap_off2,
             edge_coupling,
         }
     }
@@ -122,13 +125,11 @@ impl RadialGrid {
         self.diag(l, v, lambda, d);
         let mut neg = 0;
         let mut p = 1.0f64;
-        for i in 0..d.len() {
-            let off2 = if i > 0 {
-                self.lap_off[i - 1].powi(2)
-            } else {
-                0.0
-            };
-            let mut q = d[i] - lambda - if i > 0 { off2 / p } else { 0.0 };
+        for (i, &di) in d.iter().enumerate() {
+            let mut q = di - lambda;
+            if i > 0 {
+                q -= self.lap_off2[i - 1] / p;
+            }
             if q == 0.0 {
                 q = -1e-300;
             }

@@ -39,6 +39,8 @@ pub struct Profile {
     pub core_index: f64,
     /// Cladding index n2.
     pub cladding_index: f64,
+    /// Numerical aperture sqrt(n1^2 - n2^2) (kept as given, not recomputed).
+    pub na: f64,
 }
 
 impl Profile {
@@ -49,6 +51,7 @@ impl Profile {
             core_radius_um,
             core_index: (cladding_index * cladding_index + na * na).sqrt(),
             cladding_index,
+            na,
         }
     }
 
@@ -135,14 +138,13 @@ impl Profile {
             core_radius_um: a,
             core_index: n1,
             cladding_index,
+            na: na2.sqrt(),
         })
     }
 
     /// Numerical aperture sqrt(n1^2 - n2^2).
     pub fn na(&self) -> f64 {
-        (self.core_index * self.core_index - self.cladding_index * self.cladding_index)
-            .max(0.0)
-            .sqrt()
+        self.na
     }
 
     /// V = 2 pi a NA / lambda.
@@ -185,7 +187,7 @@ impl Profile {
     /// Refractive index at radius r (micrometres).
     pub fn index(&self, r_um: f64) -> f64 {
         let n2 = self.cladding_index;
-        let na2 = self.na().powi(2);
+        let na2 = self.na * self.na;
         (n2 * n2 + na2 * self.f(r_um / self.core_radius_um)).sqrt()
     }
 }

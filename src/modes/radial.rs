@@ -73,7 +73,7 @@ impl RadialTable {
             .sum();
         s += tail_integral(l, w, (n as f64 - 0.5) * h, n as f64 * h) * r[n - 1] * r[n - 1];
         let scale = sign / (s.sqrt() * a_um);
-        let par = if l % 2 == 0 { 1.0 } else { -1.0 };
+        let par = if l.is_multiple_of(2) { 1.0 } else { -1.0 };
         let mut vals = Vec::with_capacity(n + 2);
         vals.push(par * r[1] * scale);
         vals.push(par * r[0] * scale);
