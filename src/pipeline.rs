@@ -13,7 +13,7 @@ use crate::matrix::{
 };
 use crate::modes::Basis;
 use crate::setup::Setup;
-use ndarray::Array3;
+use ndarray::{Array2, Array3};
 use num_complex::Complex64;
 use std::fmt::Write as _;
 use std::path::PathBuf;
@@ -152,4 +152,93 @@ pub fn captured_csv(d: &Decoded) -> String {
         }
     }
     csv
+}
+
+/// Pictures of one frame per channel: the decoded field (tilt and defocus removed at the
+/// channel's alignment) and the Fourier plane of the raw region with the window and the DC
+/// exclusion drawn. Returns (file name, picture) pairs.
+pub fn frame_pictures(
+    setup: &Setup,
+    alignments: Option<Vec<Alignment>>,
+    frame_index: usize,
+) -> Result<Vec<(String, image::RgbImage)>> {
+    let stack = stack_path(setup)?;
+    let opts = DecodeOptions {
+        alignments,
+        ..Default::default()
+    };
+    let prepared = crate::decode::prepare(setup, std::slice::from_ref(&stack), &opts)?;
+    let mut frames = crate::frames::FrameStack::open(std::slice::from_ref(&stack))?;
+    let fw = frames.width();
+    let mut buf = vec![0f32; fw * frames.height()];
+    for _ in 0..=frame_index {
+        if frames.read_next(&mut buf)?.is_none() {
+            return Err(Error::frame(&stack, Some(frame_index), "no such frame"));
+        }
+    }
+    let mut pics = Vec::new();
+    for (plan, info) in prepared.plans.iter().zip(&prepared.channels) {
+        let g = info.grid();
+        let mut scratch = plan.scratch();
+        let mut field = vec![Complex64::default(); g.nx * g.ny];
+        plan.decode(&buf, &mut scratch, &mut field);
+        let field = Array2::from_shape_vec((g.ny, g.nx), field)
+            .map_err(|e| Error::Input(format!("decoded field shape: {e}")))?;
+        let title = format!("channel {} frame {frame_index}: decoded field", info.name);
+        pics.push((
+            format!("field_{}.png", info.name),
+            crate::render::field_picture(&field, g.pitch_um, &title),
+        ));
+        let spec = crate::decode::carrier::MeanSpectrum::compute(&[&buf], fw, info.region, &[]);
+        let (w, h) = (info.region[2], info.region[3]);
+        let logmag = Array2::from_shape_fn((h, w), |(r, c)| {
+            let ky = r as i64 - (h / 2) as i64;
+            let kx = c as i64 - (w / 2) as i64;
+            (spec.at(ky, kx) + 1e-12).log10()
+        });
+        pics.push((
+            format!("fourier_{}.png", info.name),
+            crate::render::fourier_picture(
+                &logmag,
+                info.carrier_cycles_per_px,
+                info.window_radius_cycles_per_px,
+                setup.decode.dc_exclusion,
+            ),
+        ));
+    }
+    Ok(pics)
+}
+
+/// File names of the matrix pictures.
+pub const MATRIX_PICTURES: [&str; 4] = [
+    "matrix_db.png",
+    "matrix_phase.png",
+    "singular_values.png",
+    "group_power.png",
+];
+
+/// Pictures of an analysed matrix, named as [`MATRIX_PICTURES`].
+pub fn matrix_pictures(basis: &Basis, a: &Analysis) -> Vec<(String, image::RgbImage)> {
+    let groups = basis.groups();
+    let f = &a.summary.figures;
+    let ng = f.group_power_abs.len();
+    let gp = Array2::from_shape_fn((ng, ng), |(i, j)| f.group_power_abs[i][j]);
+    vec![
+        (
+            MATRIX_PICTURES[0].into(),
+            crate::render::matrix_db_picture(&a.matrix, &groups, basis.len(), -40.0),
+        ),
+        (
+            MATRIX_PICTURES[1].into(),
+            crate::render::matrix::matrix_phase_picture(&a.matrix),
+        ),
+        (
+            MATRIX_PICTURES[2].into(),
+            crate::render::matrix::singular_values_chart(&f.singular_values),
+        ),
+        (
+            MATRIX_PICTURES[3].into(),
+            crate::render::matrix::group_power_picture(&gp),
+        ),
+    ]
 }

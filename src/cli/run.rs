@@ -1,6 +1,21 @@
-//! `modegram run`.
+//! `modegram run SETUP --out DIR`: the whole job. Fit each channel's alignment on the launch
+//! sequence, decode every frame with the fitted alignment, assemble and analyse the transfer
+//! matrix, check the holography, draw the pictures and write report.html.
+//!
+//! Every output name is checked before any work starts, so an existing result is never
+//! half-replaced; without `--force` nothing is overwritten.
 use super::{Common, Outcome};
-use crate::error::Result;
+use crate::align::calibrate::{calibrate, calibration_json, decode_raw, fitted_toml};
+use crate::align::check::{worst, Status, Thresholds};
+use crate::align::fit::FitSpec;
+use crate::align::inspect::check_setup;
+use crate::error::{Error, Result};
+use crate::export::OutDir;
+use crate::grid::Alignment;
+use crate::matrix::{summary_table, write_matrix_files, MATRIX_FILES};
+use crate::modes::Basis;
+use crate::pipeline;
+use crate::setup::Setup;
 use clap::Args;
 use std::path::PathBuf;
 
@@ -8,10 +23,156 @@ use std::path::PathBuf;
 pub struct RunArgs {
     /// The setup file (TOML).
     pub setup: PathBuf,
+    /// Use the setup's alignment as it is instead of fitting it first.
+    #[arg(long)]
+    pub no_calibrate: bool,
+    /// Frame shown in the field and Fourier-plane pictures (0-based).
+    #[arg(long, default_value_t = 0)]
+    pub picture_frame: usize,
     #[command(flatten)]
     pub common: Common,
 }
 
-pub fn run(_args: &RunArgs) -> Result<Outcome> {
-    Err(super::unavailable("run"))
+pub fn run(args: &RunArgs) -> Result<Outcome> {
+    let q = args.common.quiet;
+    let mut setup = Setup::load(&args.setup)?;
+    let text = std::fs::read_to_string(&args.setup).map_err(|e| Error::io(&args.setup, e))?;
+    let out = OutDir::create(&args.common.out, args.common.force)?;
+    let field_pics: Vec<String> = setup
+        .channels
+        .iter()
+        .flat_map(|c| [format!("field_{}.png", c.name), format!("fourier_{}.png", c.name)])
+        .collect();
+    let mut names: Vec<&str> = MATRIX_FILES.to_vec();
+    names.extend(pipeline::DECODE_FILES);
+    names.extend(pipeline::MATRIX_PICTURES);
+    names.extend(field_pics.iter().map(String::as_str));
+    names.extend(["check.json", "setup.toml", "report.html", "gallery.png"]);
+    if !args.no_calibrate {
+        names.extend(["calibration.json", "fitted.toml"]);
+    }
+    out.ensure_writable(&names)?;
+
+    let basis = Basis::from_setup(&setup)?;
+    let stack = pipeline::stack_path(&setup)?;
+    let n_total = crate::frames::FrameStack::open(std::slice::from_ref(&stack))?
+        .len()
+        .unwrap_or(0) as u64;
+    // The launch description must match the stack before any fitting.
+    pipeline::layout(&setup, &basis, n_total as usize)?;
+
+    // 1. Calibrate.
+    let mut calibration = None;
+    if !args.no_calibrate {
+        let pb = super::progress(n_total, "calibrate", q);
+        let raw = decode_raw(&setup, std::slice::from_ref(&stack), &|n| {
+            pb.set_position(n as u64)
+        })?;
+        pb.finish_and_clear();
+        let spec = FitSpec::default();
+        let fits = calibrate(&setup, &basis, &raw, None, &spec, &|_, _| {})?;
+        drop(raw);
+        for (ch, f) in setup.channels.iter().zip(&fits) {
+            if !f.converged {
+                super::warn(
+                    q,
+                    &format!(
+                        "channel {}: the alignment fit did not converge ({}); its starting values are kept",
+                        ch.name, f.message
+                    ),
+                );
+            }
+        }
+        let json = calibration_json(&setup, &fits, n_total as usize);
+        let fitted = fitted_toml(&setup, &text, &fits)?;
+        for (ch, f) in setup.channels.iter_mut().zip(&fits) {
+            set_alignment(ch, &f.fitted);
+        }
+        calibration = Some((json, fitted));
+    }
+    let alignments: Vec<Alignment> = setup.channels.iter().map(|c| c.alignment()).collect();
+
+    // 2. Decode with the (fitted) alignment, 3. assemble and analyse.
+    let pb = super::progress(n_total, "decode", q);
+    let d = pipeline::decode_sequence(&setup, &basis, Some(alignments.clone()), false, &|n| {
+        pb.set_position(n as u64)
+    })?;
+    pb.finish_and_clear();
+    for w in &d.warnings {
+        super::warn(q, w);
+    }
+    let analysis = pipeline::analyse_sequence(&setup, &basis, &d)?;
+
+    // 4. Check the holography with the fitted alignment.
+    let items = check_setup(
+        &setup,
+        &basis,
+        std::slice::from_ref(&stack),
+        &Thresholds::default(),
+        &|_| {},
+    )?;
+    let check_status = worst(&items);
+
+    // 5. Pictures.
+    let mut pictures = pipeline::frame_pictures(&setup, Some(alignments), args.picture_frame)?;
+    pictures.extend(pipeline::matrix_pictures(&basis, &analysis));
+    let gallery_px = 96;
+    let grid = crate::grid::Grid::centred(
+        gallery_px,
+        gallery_px,
+        3.2 * basis.core_radius_um / gallery_px as f64,
+    );
+    let sampled = basis.sample(&grid, &Alignment::default());
+    let labels: Vec<String> = basis.modes.iter().map(|m| m.label.clone()).collect();
+    pictures.push((
+        "gallery.png".into(),
+        crate::render::gallery_picture(&sampled, &labels, 0),
+    ));
+
+    // 6. Write everything, then the report that reads it back.
+    pipeline::write_decode_files(&out, &basis, &d)?;
+    write_matrix_files(&out, &analysis)?;
+    out.write_json("check.json", &items)?;
+    out.write_text("setup.toml", &text)?;
+    if let Some((json, fitted)) = &calibration {
+        out.write_json("calibration.json", json)?;
+        out.write_text("fitted.toml", fitted)?;
+    }
+    for (name, img) in &pictures {
+        crate::render::write_png(&out, name, img)?;
+    }
+    let html = crate::render::build_report(&out.path)?;
+    out.write_text("report.html", &html)?;
+
+    let mut table = summary_table(&analysis.summary);
+    table.push_str(&format!(
+        "\nholography check: {} ({} items; check.json)\nreport: {}\n",
+        check_status.as_str(),
+        items.len(),
+        out.file("report.html").display()
+    ));
+    let mut json = serde_json::to_value(&analysis.summary).unwrap_or_default();
+    if let Some(obj) = json.as_object_mut() {
+        obj.insert("check".into(), serde_json::to_value(&items).unwrap_or_default());
+        obj.insert(
+            "check_status".into(),
+            serde_json::Value::String(check_status.as_str().into()),
+        );
+        if let Some((c, _)) = &calibration {
+            obj.insert("calibration".into(), c.clone());
+        }
+    }
+    Ok(Outcome {
+        table,
+        json,
+        failed: check_status == Status::Fail,
+    })
+}
+
+fn set_alignment(ch: &mut crate::setup::ChannelSpec, a: &Alignment) {
+    ch.center_um = a.center_um;
+    ch.rotation_deg = a.rotation_deg;
+    ch.scale = a.scale;
+    ch.tilt_mrad = a.tilt_mrad;
+    ch.defocus_um = a.defocus_um;
 }
