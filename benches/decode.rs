@@ -20,10 +20,7 @@ fn frame(n: usize) -> Vec<f32> {
                 .wrapping_mul(6364136223846793005)
                 .wrapping_add(1442695040888963407);
             let (c, r) = ((i % n) as f32, (i / n) as f32);
-            (20000.0
-                + 8000.0 * (6.2831855 * (0.25 * c + 0.1 * r)).cos()
-                + (x >> 52) as f32)
-                .round()
+            (20000.0 + 8000.0 * (6.2831855 * (0.25 * c + 0.1 * r)).cos() + (x >> 52) as f32).round()
         })
         .collect()
 }
@@ -93,7 +90,11 @@ fn bench(c: &mut Criterion) {
                     });
                 coef.axis_chunks_iter_mut(ndarray::Axis(0), per)
                     .into_par_iter()
-                    .zip(fields.axis_chunks_iter(ndarray::Axis(0), per).into_par_iter())
+                    .zip(
+                        fields
+                            .axis_chunks_iter(ndarray::Axis(0), per)
+                            .into_par_iter(),
+                    )
                     .for_each(|(c, f)| pr.project_into(f, c));
             })
         });
@@ -117,7 +118,8 @@ fn bench(c: &mut Criterion) {
             b.iter(|| {
                 for y in 0..n {
                     row.copy_from_slice(&f[y * n..(y + 1) * n]);
-                    r.process_with_scratch(&mut row, &mut spec, &mut rs).unwrap();
+                    r.process_with_scratch(&mut row, &mut spec, &mut rs)
+                        .unwrap();
                     for k in 0..nk {
                         cols[k * n + y] = spec[k];
                     }
