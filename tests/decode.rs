@@ -1046,3 +1046,85 @@ fn peak_memory_of_a_2000_frame_stack() {
         hwm_kb / 1024.0
     );
 }
+
+/// `modegram decode` end to end with the setup's HG basis: the files of shared/interface.md,
+/// |c_00| of an offset Gaussian of the basis waist (coherent state, Glauber 1963) to 1e-3.
+#[test]
+fn cli_decode_writes_coefficients_captured_and_metadata() {
+    let d = tempfile::tempdir().unwrap();
+    let n = 128;
+    let beam = Beam {
+        w0: 4.0,
+        d: [0.8, -0.4],
+        tilt_mrad: [0.0, 0.0],
+        amp: 700.0,
+    };
+    let holo = hologram(
+        n,
+        n,
+        [0, 0, n, n],
+        &|x, y| beam.camera(x, y),
+        [0.26, 0.1],
+        12000.0,
+    );
+    let stack = write_frames(d.path(), "s.tif", n, n, &[holo.clone(), holo]);
+    write_frames(d.path(), "ref.tif", n, n, &[vec![12000.0; n * n]]);
+    let extra =
+        "[basis]\nkind = \"hg\"\ngroups = 4\nwaist_um = 4.0\n[frames]\nreference = \"ref.tif\"";
+    let setup = d.path().join("setup.toml");
+    std::fs::write(
+        &setup,
+        setup_text([0, 0, n, n], "carrier = [0.26, 0.1]", extra),
+    )
+    .unwrap();
+    let out = d.path().join("out");
+    let run = |force: bool| {
+        let mut c = assert_cmd::Command::cargo_bin("modegram").unwrap();
+        c.arg("decode")
+            .arg(&setup)
+            .arg(&stack)
+            .arg("--out")
+            .arg(&out)
+            .arg("--fields")
+            .arg("-q");
+        if force {
+            c.arg("--force");
+        }
+        c.assert()
+    };
+    let a = run(false).success();
+    let table = String::from_utf8_lossy(&a.get_output().stdout).to_string();
+    assert!(
+        table.contains("channel") && table.contains("2 frames decoded"),
+        "{table}"
+    );
+    let c: Array3<Complex64> = modegram::export::read_npy(&out.join("coefficients.npy")).unwrap();
+    assert_eq!(c.dim(), (2, 1, 10));
+    let want = beam.coefficient(0, 0, [0.0, 0.0]).norm();
+    assert!(
+        (c[[0, 0, 0]].norm() / want - 1.0).abs() < 1e-3,
+        "{} vs {want}",
+        c[[0, 0, 0]].norm()
+    );
+    let csv = std::fs::read_to_string(out.join("captured.csv")).unwrap();
+    let mut lines = csv.lines();
+    assert_eq!(
+        lines.next(),
+        Some("frame,channel,captured_power,saturated_px,field_power")
+    );
+    let row: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(&row[..2], &["0", "H"]);
+    assert!(row[2].parse::<f64>().unwrap() > 0.99);
+    let meta: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("decode.json")).unwrap()).unwrap();
+    let ch = &meta["channels"][0];
+    assert!((ch["carrier_cycles_per_px"][0].as_f64().unwrap() - 0.26).abs() < 1e-12);
+    assert!(ch["window_radius_cycles_per_px"].as_f64().unwrap() > 0.0);
+    assert!(ch["separation_margin_cycles_per_px"].is_number() && ch["pitch_um"].is_number());
+    let f: ndarray::Array4<Complex64> =
+        modegram::export::read_npy(&out.join("fields.npy")).unwrap();
+    assert_eq!(f.dim().0, 2);
+    assert_eq!(f.dim().1, 1);
+    run(false).code(2);
+    run(true).success();
+}

@@ -160,7 +160,11 @@ fn lp01_mode_field_radius_matches_marcuse() {
         let w = best_overlap_waist(&r, &e, 0.5 * a, 4.0 * a);
         let marcuse = 0.65 + 1.619 * v.powf(-1.5) + 2.879 * v.powi(-6);
         let rel = (w / a - marcuse) / marcuse;
-        println!("V = {v}: w/a = {:.5}, Marcuse {marcuse:.5}, {:.3}%", w / a, 100.0 * rel);
+        println!(
+            "V = {v}: w/a = {:.5}, Marcuse {marcuse:.5}, {:.3}%",
+            w / a,
+            100.0 * rel
+        );
         assert!(rel.abs() < 0.01, "V = {v}: {rel}");
     }
 }
@@ -249,8 +253,11 @@ fn om4_like_graded_fibre_has_10_groups_and_55_modes() {
 fn groups_key_keeps_first_groups_in_order() {
     // docs/conventions.md mode order: group, then l, then cos before sin.
     let b = Basis::from_setup(&setup_v("graded", 20.27, "[basis]\ngroups = 3\n")).unwrap();
-    let got: Vec<(String, Orientation)> =
-        b.modes.iter().map(|m| (m.label.clone(), m.orientation)).collect();
+    let got: Vec<(String, Orientation)> = b
+        .modes
+        .iter()
+        .map(|m| (m.label.clone(), m.orientation))
+        .collect();
     use Orientation::*;
     let want = [
         ("LP01", Cos),
