@@ -217,7 +217,7 @@ fn tilted_offset_gaussian_decodes_to_its_hg_coefficients() {
         let dec = decode_stack(
             &setup,
             Some(&sampler as BasisSampler),
-            &[stack.clone()],
+            std::slice::from_ref(&stack),
             &DecodeOptions::default(),
             &no_progress,
         )
@@ -318,7 +318,12 @@ fn sideband_position_and_tilt_phase_slope_have_the_documented_sign() {
     let shift = 0.040 / LAMBDA_UM * FP;
     for (conj, sign) in [("", 1.0), ("conjugate = true", -1.0)] {
         let setup = load(d.path(), &setup_text(region, conj, ""));
-        let p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
+        let p = prepare(
+            &setup,
+            std::slice::from_ref(&stack),
+            &DecodeOptions::default(),
+        )
+        .unwrap();
         let c = p.channels[0].carrier_cycles_per_px;
         assert!(
             (c[0] - sign * (0.25 + shift)).abs() < 2e-3 && c[1].abs() < 2e-3,
@@ -335,7 +340,14 @@ fn sideband_position_and_tilt_phase_slope_have_the_documented_sign() {
         ("carrier = [-0.25, 0.0]", -1.0),
     ] {
         let setup = load(d.path(), &setup_text(region, carrier, ""));
-        let dec = decode_stack(&setup, None, &[stack.clone()], &opts, &no_progress).unwrap();
+        let dec = decode_stack(
+            &setup,
+            None,
+            std::slice::from_ref(&stack),
+            &opts,
+            &no_progress,
+        )
+        .unwrap();
         let g = dec.channels[0].grid();
         let f = &dec.fields.as_ref().unwrap()[0];
         let (cy, cx) = (g.ny / 2, g.nx / 2);
@@ -439,7 +451,7 @@ fn pruned_path_equals_full_fft() {
         keep_fields: true,
         ..Default::default()
     };
-    let p = prepare(&setup, &[stack.clone()], &opts).unwrap();
+    let p = prepare(&setup, std::slice::from_ref(&stack), &opts).unwrap();
     let r_amp = match &p.plans[0].spec.reference {
         modegram::decode::RefAmplitude::Constant(a) => *a,
         other => panic!("{other:?}"),
@@ -662,7 +674,7 @@ fn defocus_is_undone_with_the_documented_sign() {
         let dec = decode_stack(
             &setup,
             Some(&sampler as BasisSampler),
-            &[stack.clone()],
+            std::slice::from_ref(&stack),
             &DecodeOptions::default(),
             &no_progress,
         )
@@ -691,7 +703,7 @@ fn dark_frame_is_subtracted_and_saturation_counted() {
     for i in 0..7 {
         sat[(40 + i) * n + 60] = 65535.0;
     }
-    let s0 = write_frames(d.path(), "a.tif", n, n, &[holo.clone()]);
+    let s0 = write_frames(d.path(), "a.tif", n, n, std::slice::from_ref(&holo));
     let s1 = write_frames(d.path(), "b.tif", n, n, &[with_dark]);
     let s2 = write_frames(d.path(), "c.tif", n, n, &[sat]);
     write_frames(d.path(), "dark.tif", n, n, &[dark]);
@@ -776,7 +788,12 @@ fn sideband_overlapping_dc_warns_or_fails_when_strict() {
     let stack = write_frames(d.path(), "o.tif", 128, 128, &[holo]);
     let ch = "carrier = [0.2, 0.0]\nwindow_radius = 0.12";
     let setup = load(d.path(), &setup_text([0, 0, 128, 128], ch, ""));
-    let p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
+    let p = prepare(
+        &setup,
+        std::slice::from_ref(&stack),
+        &DecodeOptions::default(),
+    )
+    .unwrap();
     assert!(p.channels[0].separation_margin_cycles_per_px < 0.0);
     let w = p.warnings.join("\n");
     assert!(
@@ -787,7 +804,7 @@ fn sideband_overlapping_dc_warns_or_fails_when_strict() {
         strict: true,
         ..Default::default()
     };
-    let (m, code) = err_text(prepare(&setup, &[stack.clone()], &strict));
+    let (m, code) = err_text(prepare(&setup, std::slice::from_ref(&stack), &strict));
     assert!(
         m.contains("channel[0].window_radius") && m.contains("overlaps"),
         "{m}"
@@ -830,7 +847,12 @@ fn two_carriers_in_one_region_are_two_channels() {
     );
     text.push_str(&format!("[[channel]]\nname = \"V\"\nregion = [0, 0, {n}, {n}]\nmagnification = {MAG}\ncarrier = [0.0, 0.3]\nwindow_radius = 0.08\n"));
     let setup = load(d.path(), &text);
-    let mut p = prepare(&setup, &[stack.clone()], &DecodeOptions::default()).unwrap();
+    let mut p = prepare(
+        &setup,
+        std::slice::from_ref(&stack),
+        &DecodeOptions::default(),
+    )
+    .unwrap();
     // the reference intensity per channel is 8000 (each channel's own reference)
     for q in p.plans.iter_mut() {
         *q = q.with_reference(modegram::decode::RefAmplitude::Constant(8000f64.sqrt()));
@@ -890,13 +912,13 @@ fn numpy_reference_decoder_agrees() {
         keep_fields: true,
         ..Default::default()
     };
-    let p = prepare(&setup, &[npy.clone()], &opts).unwrap();
+    let p = prepare(&setup, std::slice::from_ref(&npy), &opts).unwrap();
     let plan = &p.plans[0];
     let r_amp = match &plan.spec.reference {
         modegram::decode::RefAmplitude::Constant(a) => *a,
         other => panic!("{other:?}"),
     };
-    let dec = decode_prepared(&p, &[], &[npy.clone()], &opts, &no_progress).unwrap();
+    let dec = decode_prepared(&p, &[], std::slice::from_ref(&npy), &opts, &no_progress).unwrap();
     let (nx, ny) = plan.spec.grid_px;
     let params = serde_json::json!({
         "carrier": c, "radius": 0.07, "nx": nx, "ny": ny, "r_amp": r_amp, "fibre_pitch_um": FP,
@@ -959,4 +981,150 @@ fn cli_keeps_existing_outputs_without_force() {
         std::fs::read(out.join("coefficients.npy")).unwrap(),
         b"keep me"
     );
+}
+
+/// Peak memory while decoding a 2000-frame 1024^2 uint16 stack (4 GB on disk) with a
+/// 110-mode basis stays below 300 MB: the stack is streamed (VmHWM from /proc, Linux).
+/// Ignored by default (disk and time); run with `cargo test --test decode -- --ignored`.
+#[test]
+#[ignore]
+fn peak_memory_of_a_2000_frame_stack() {
+    let d = tempfile::tempdir().unwrap();
+    let n = 1024;
+    let (holo, _) = beam_hologram(n, [0.25, 0.1], 15000.0);
+    let q = to_u16(&holo);
+    let p = d.path().join("big.tif");
+    let mut w = modegram::frames::TiffStackWriter::create(&p).unwrap();
+    for _ in 0..2000 {
+        w.write_u16(n, n, &q).unwrap();
+    }
+    w.finish().unwrap();
+    drop((holo, q));
+    let setup = load(
+        d.path(),
+        &setup_text(
+            [0, 0, n, n],
+            "carrier = [0.25, 0.1]\nwindow_radius = 0.08",
+            "[decode]\ngrid_px = 256",
+        ),
+    );
+    let sampler = |g: &Grid, _: &Alignment| -> modegram::Result<Array3<Complex64>> {
+        Ok(Array3::from_shape_fn((110, g.ny, g.nx), |(k, y, x)| {
+            Complex64::from_polar(
+                1.0 / (g.len() as f64).sqrt() / g.pitch_um,
+                (k * 7 + y * 3 + x) as f64,
+            )
+        }))
+    };
+    let t = std::time::Instant::now();
+    let dec = decode_stack(
+        &setup,
+        Some(&sampler as BasisSampler),
+        &[p],
+        &DecodeOptions::default(),
+        &no_progress,
+    )
+    .unwrap();
+    let secs = t.elapsed().as_secs_f64();
+    assert_eq!(dec.coefficients.dim(), (2000, 1, 110));
+    let status = std::fs::read_to_string("/proc/self/status").unwrap();
+    let hwm_kb: f64 = status
+        .lines()
+        .find(|l| l.starts_with("VmHWM"))
+        .and_then(|l| l.split_whitespace().nth(1))
+        .unwrap()
+        .parse()
+        .unwrap();
+    eprintln!(
+        "2000 frames 1024^2: {secs:.1} s ({:.0} frames/s), peak RSS {:.0} MB",
+        2000.0 / secs,
+        hwm_kb / 1024.0
+    );
+    assert!(
+        hwm_kb / 1024.0 < 300.0,
+        "peak RSS {:.0} MB",
+        hwm_kb / 1024.0
+    );
+}
+
+/// `modegram decode` end to end with the setup's HG basis: the files of shared/interface.md,
+/// |c_00| of an offset Gaussian of the basis waist (coherent state, Glauber 1963) to 1e-3.
+#[test]
+fn cli_decode_writes_coefficients_captured_and_metadata() {
+    let d = tempfile::tempdir().unwrap();
+    let n = 128;
+    let beam = Beam {
+        w0: 4.0,
+        d: [0.8, -0.4],
+        tilt_mrad: [0.0, 0.0],
+        amp: 700.0,
+    };
+    let holo = hologram(
+        n,
+        n,
+        [0, 0, n, n],
+        &|x, y| beam.camera(x, y),
+        [0.26, 0.1],
+        12000.0,
+    );
+    let stack = write_frames(d.path(), "s.tif", n, n, &[holo.clone(), holo]);
+    write_frames(d.path(), "ref.tif", n, n, &[vec![12000.0; n * n]]);
+    let extra =
+        "[basis]\nkind = \"hg\"\ngroups = 4\nwaist_um = 4.0\n[frames]\nreference = \"ref.tif\"";
+    let setup = d.path().join("setup.toml");
+    std::fs::write(
+        &setup,
+        setup_text([0, 0, n, n], "carrier = [0.26, 0.1]", extra),
+    )
+    .unwrap();
+    let out = d.path().join("out");
+    let run = |force: bool| {
+        let mut c = assert_cmd::Command::cargo_bin("modegram").unwrap();
+        c.arg("decode")
+            .arg(&setup)
+            .arg(&stack)
+            .arg("--out")
+            .arg(&out)
+            .arg("--fields")
+            .arg("-q");
+        if force {
+            c.arg("--force");
+        }
+        c.assert()
+    };
+    let a = run(false).success();
+    let table = String::from_utf8_lossy(&a.get_output().stdout).to_string();
+    assert!(
+        table.contains("channel") && table.contains("2 frames decoded"),
+        "{table}"
+    );
+    let c: Array3<Complex64> = modegram::export::read_npy(&out.join("coefficients.npy")).unwrap();
+    assert_eq!(c.dim(), (2, 1, 10));
+    let want = beam.coefficient(0, 0, [0.0, 0.0]).norm();
+    assert!(
+        (c[[0, 0, 0]].norm() / want - 1.0).abs() < 1e-3,
+        "{} vs {want}",
+        c[[0, 0, 0]].norm()
+    );
+    let csv = std::fs::read_to_string(out.join("captured.csv")).unwrap();
+    let mut lines = csv.lines();
+    assert_eq!(
+        lines.next(),
+        Some("frame,channel,captured_power,saturated_px,field_power")
+    );
+    let row: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(&row[..2], &["0", "H"]);
+    assert!(row[2].parse::<f64>().unwrap() > 0.99);
+    let meta: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("decode.json")).unwrap()).unwrap();
+    let ch = &meta["channels"][0];
+    assert!((ch["carrier_cycles_per_px"][0].as_f64().unwrap() - 0.26).abs() < 1e-12);
+    assert!(ch["window_radius_cycles_per_px"].as_f64().unwrap() > 0.0);
+    assert!(ch["separation_margin_cycles_per_px"].is_number() && ch["pitch_um"].is_number());
+    let f: ndarray::Array4<Complex64> =
+        modegram::export::read_npy(&out.join("fields.npy")).unwrap();
+    assert_eq!(f.dim().0, 2);
+    assert_eq!(f.dim().1, 1);
+    run(false).code(2);
+    run(true).success();
 }

@@ -320,7 +320,7 @@ fn truncated_and_corrupt_tiff_are_named() {
     // cut inside the pixel data of the last page
     let cut = d.path().join("cut.tif");
     std::fs::write(&cut, &bytes[..bytes.len() * 3 / 4]).unwrap();
-    let res = FrameStack::open(&[cut.clone()]).and_then(|mut s| {
+    let res = FrameStack::open(std::slice::from_ref(&cut)).and_then(|mut s| {
         let mut buf = vec![0f32; 64 * 64];
         while s.read_next(&mut buf)?.is_some() {}
         Ok(())

@@ -47,10 +47,12 @@ pub fn run(args: &DecodeArgs) -> Result<Outcome> {
     };
     let total = crate::frames::FrameStack::open(&args.frames)?.len();
     let pb = super::progress(total.unwrap_or(0) as u64, "decode", args.common.quiet);
-    let basis = basis_sampler(&setup)?;
+    let basis = crate::modes::Basis::from_setup(&setup)?;
+    let labels: Vec<String> = basis.modes.iter().map(|m| m.label.clone()).collect();
+    let sampler = move |g: &crate::grid::Grid, a: &crate::grid::Alignment| Ok(basis.sample(g, a));
     let d = decode_stack(
         &setup,
-        basis.as_ref().map(|b| b as BasisSampler),
+        Some(&sampler as BasisSampler),
         &args.frames,
         &opts,
         &|n| pb.set_position(n as u64),
@@ -59,7 +61,7 @@ pub fn run(args: &DecodeArgs) -> Result<Outcome> {
     for w in &d.warnings {
         super::warn(args.common.quiet, w);
     }
-    write_outputs(&out, &d)?;
+    write_outputs(&out, &d, &labels)?;
     Ok(Outcome {
         table: table(&d),
         json: summary(&d),
@@ -67,26 +69,7 @@ pub fn run(args: &DecodeArgs) -> Result<Outcome> {
     })
 }
 
-/// The basis of the setup, sampled on a channel's grid at its alignment.
-#[allow(clippy::type_complexity)]
-fn basis_sampler(
-    setup: &Setup,
-) -> Result<
-    Option<
-        Box<
-            dyn Fn(
-                    &crate::grid::Grid,
-                    &crate::grid::Alignment,
-                ) -> Result<ndarray::Array3<Complex64>>
-                + Sync,
-        >,
-    >,
-> {
-    let _ = setup;
-    Err(super::unavailable("the mode basis (modes stage)"))
-}
-
-fn write_outputs(out: &OutDir, d: &Decoded) -> Result<()> {
+fn write_outputs(out: &OutDir, d: &Decoded, labels: &[String]) -> Result<()> {
     out.write_npy("coefficients.npy", &d.coefficients)?;
     let mut csv = String::from("frame,channel,captured_power,saturated_px,field_power\n");
     let (nf, nc) = d.captured.dim();
@@ -105,7 +88,12 @@ fn write_outputs(out: &OutDir, d: &Decoded) -> Result<()> {
     out.write_text("captured.csv", &csv)?;
     out.write_json(
         "decode.json",
-        &serde_json::json!({ "frames": nf, "channels": d.channels, "warnings": d.warnings }),
+        &serde_json::json!({
+            "frames": nf,
+            "modes": labels,
+            "channels": d.channels,
+            "warnings": d.warnings,
+        }),
     )?;
     if let Some(fields) = &d.fields {
         let (ny, nx) = (fields[0].dim().1, fields[0].dim().2);

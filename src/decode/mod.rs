@@ -13,7 +13,7 @@
 use crate::error::{Error, Result};
 use crate::frames::{mean_frame, FrameStack};
 use crate::grid::{Alignment, Grid};
-use crate::projection::{captured_power, field_power, Projector};
+use crate::projection::{field_power, Projector};
 use crate::setup::Setup;
 use ndarray::{s, Array2, Array3};
 use num_complex::Complex64;
@@ -221,19 +221,20 @@ pub fn decode_prepared(
                 });
         }
         for i in 0..n {
-            for ch in 0..nch {
-                let c = b.coeffs[ch].row(i);
+            for (ch, coeffs) in b.coeffs.iter().enumerate() {
+                let c = coeffs.row(i);
                 let pw = b.power[i * nch + ch];
                 coef.extend(c.iter());
                 sat_all.push(b.sat[i * nch + ch]);
                 pow_all.push(pw);
-                cap_all.push(if n_modes > 0 {
-                    captured_power(c.as_slice().unwrap_or(&c.to_vec()), pw)
+                let sum_c2: f64 = c.iter().map(|z| z.norm_sqr()).sum();
+                cap_all.push(if n_modes > 0 && pw > 0.0 {
+                    sum_c2 / pw
                 } else {
                     0.0
                 });
-                if opts.keep_fields {
-                    kept[ch].extend(b.fields[ch].row(i).iter());
+                if let Some(k) = kept.get_mut(ch) {
+                    k.extend(b.fields[ch].row(i).iter());
                 }
             }
         }

@@ -28,7 +28,7 @@ pub fn fibre_bandwidth_cycles_per_px(setup: &Setup, ch: &ChannelSpec) -> Option<
 fn smooth(n: usize) -> bool {
     let mut n = n;
     for p in [2, 3, 5] {
-        while n > 1 && n % p == 0 {
+        while n > 1 && n.is_multiple_of(p) {
             n /= p;
         }
     }
@@ -48,7 +48,7 @@ pub fn choose_grid(
     let need = |n: usize| 2 * (radius * n as f64 + 0.5).floor() as usize + 1;
     let (need_x, need_y) = (need(w), need(h));
     let fits = |nx: usize| -> Option<usize> {
-        if (nx * h) % w != 0 {
+        if !(nx * h).is_multiple_of(w) {
             return None;
         }
         let ny = nx * h / w;
@@ -57,7 +57,7 @@ pub fn choose_grid(
     if let Some(nx) = grid_px {
         return match fits(nx) {
             Some(ny) => Ok((nx, ny)),
-            None if (nx * h) % w != 0 => Err(format!(
+            None if !(nx * h).is_multiple_of(w) => Err(format!(
                 "{nx} columns give {} rows for the {w}x{h} region: not a whole number \
                  (square decoded pixels need grid_px * height / width whole)",
                 nx as f64 * h as f64 / w as f64

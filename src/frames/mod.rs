@@ -42,8 +42,8 @@ impl PixelKind {
 }
 
 enum Inner {
-    Tiff(tiff::TiffFrames),
-    Png(png::PngFrames),
+    Tiff(Box<tiff::TiffFrames>),
+    Png(Box<png::PngFrames>),
     Npy(npy::NpyFrames),
 }
 
@@ -70,12 +70,12 @@ impl FrameReader {
             "tif" | "tiff" => {
                 let t = tiff::TiffFrames::open(path)?;
                 let (w, h, n, k) = (t.width, t.height, t.count, t.kind);
-                (Inner::Tiff(t), w, h, Some(n), k)
+                (Inner::Tiff(Box::new(t)), w, h, Some(n), k)
             }
             "png" => {
                 let p = png::PngFrames::open(path)?;
                 let (w, h, k) = (p.width, p.height, p.kind);
-                (Inner::Png(p), w, h, Some(1), k)
+                (Inner::Png(Box::new(p)), w, h, Some(1), k)
             }
             "npy" => {
                 let n = npy::NpyFrames::open(path)?;
