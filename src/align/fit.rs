@@ -59,8 +59,8 @@ impl Default for FitSpec {
             rank_extra: 10,
             defocus_range_um: None,
             nm: NmOptions {
-                ftol: 1e-9,
-                xtol: 2e-3,
+                ftol: 1e-8,
+                xtol: 1e-2,
                 max_evals: 1500,
                 restarts: 1,
             },

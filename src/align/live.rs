@@ -54,6 +54,7 @@ pub struct LiveChannel {
     kz_minus_k: Vec<f64>,
     scratch: Vec<Complex64>,
     work: Vec<Complex64>,
+    hbuf: Vec<Complex64>,
 }
 
 impl LiveChannel {
@@ -85,6 +86,7 @@ impl LiveChannel {
             .to_vec();
         LiveChannel {
             work: vec![Complex64::new(0.0, 0.0); grid.len()],
+            hbuf: vec![Complex64::new(0.0, 0.0); grid.len()],
             grid,
             wavelength_nm,
             alignment,
@@ -102,18 +104,20 @@ impl LiveChannel {
     }
 
     /// Captured fraction of the spectrum `e` (of the tilt-corrected field, power `p`) after
-    /// propagation by `-dz`.
-    fn captured_at(&self, e: &[Complex64], p: f64, dz: f64) -> f64 {
+    /// propagation by `-dz`; `h` is scratch for the transfer function.
+    fn captured_at(&self, e: &[Complex64], p: f64, dz: f64, h: &mut [Complex64]) -> f64 {
         let n = self.grid.len() as f64;
         let da = self.grid.pixel_area_um2();
+        for ((hv, &q), ev) in h.iter_mut().zip(&self.kz_minus_k).zip(e) {
+            *hv = if q.is_nan() {
+                Complex64::new(0.0, 0.0)
+            } else {
+                ev * Complex64::from_polar(1.0, -q * dz)
+            };
+        }
         let mut total = 0.0;
         for s in &self.spectra {
-            let mut acc = Complex64::new(0.0, 0.0);
-            for ((a, b), &q) in s.iter().zip(e).zip(&self.kz_minus_k) {
-                if !q.is_nan() {
-                    acc += a.conj() * b * Complex64::from_polar(1.0, -q * dz);
-                }
-            }
+            let acc: Complex64 = s.iter().zip(h.iter()).map(|(a, b)| a.conj() * b).sum();
             total += (acc * (da / n)).norm_sqr();
         }
         if p > 0.0 {
@@ -164,13 +168,24 @@ impl LiveChannel {
             -1.0,
         );
         self.fft.forward(&mut work, &mut self.scratch);
-        let captured = self.captured_at(&work, p, self.alignment.defocus_um);
+        let mut hbuf = std::mem::take(&mut self.hbuf);
+        let captured = self.captured_at(&work, p, self.alignment.defocus_um, &mut hbuf);
         let z0 = self.alignment.defocus_um;
         let r = self.focus_range_um;
-        let f = |z: f64| -self.captured_at(&work, p, z);
-        let (z, _) = scan(f, z0 - r, z0 + r, 9);
+        let (z, _) = scan(
+            |z| -self.captured_at(&work, p, z, &mut hbuf),
+            z0 - r,
+            z0 + r,
+            9,
+        );
         let h = 2.0 * r / 8.0;
-        let (focus, _, _) = golden_section(f, z - h, z + h, 0.01 * h);
+        let (focus, _, _) = golden_section(
+            |z| -self.captured_at(&work, p, z, &mut hbuf),
+            z - h,
+            z + h,
+            0.02 * h,
+        );
+        self.hbuf = hbuf;
         self.work = work;
         LiveFigures {
             fringe_period_px: if cf > 0.0 { 1.0 / cf } else { f64::INFINITY },
