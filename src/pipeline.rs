@@ -19,7 +19,9 @@ use std::fmt::Write as _;
 use std::path::PathBuf;
 
 /// The basis sampled on a grid at an alignment, as the decoder asks for it.
-pub fn sampler(basis: &Basis) -> impl Fn(&Grid, &Alignment) -> Result<Array3<Complex64>> + Sync + '_ {
+pub fn sampler(
+    basis: &Basis,
+) -> impl Fn(&Grid, &Alignment) -> Result<Array3<Complex64>> + Sync + '_ {
     move |g: &Grid, a: &Alignment| Ok(basis.sample(g, a))
 }
 

@@ -41,7 +41,12 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     let field_pics: Vec<String> = setup
         .channels
         .iter()
-        .flat_map(|c| [format!("field_{}.png", c.name), format!("fourier_{}.png", c.name)])
+        .flat_map(|c| {
+            [
+                format!("field_{}.png", c.name),
+                format!("fourier_{}.png", c.name),
+            ]
+        })
         .collect();
     let mut names: Vec<&str> = MATRIX_FILES.to_vec();
     names.extend(pipeline::DECODE_FILES);
@@ -153,7 +158,10 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     ));
     let mut json = serde_json::to_value(&analysis.summary).unwrap_or_default();
     if let Some(obj) = json.as_object_mut() {
-        obj.insert("check".into(), serde_json::to_value(&items).unwrap_or_default());
+        obj.insert(
+            "check".into(),
+            serde_json::to_value(&items).unwrap_or_default(),
+        );
         obj.insert(
             "check_status".into(),
             serde_json::Value::String(check_status.as_str().into()),
