@@ -7,7 +7,9 @@
 //! orthonormal basis, by Parseval's identity for orthonormal expansions).
 use crate::error::{Error, Result};
 use crate::grid::Grid;
-use ndarray::{linalg::general_mat_mul, Array2, ArrayView2, ArrayView3, ArrayViewMut2, Axis};
+use ndarray::{
+    linalg::general_mat_mul, Array2, Array3, ArrayView2, ArrayView3, ArrayViewMut2, Axis,
+};
 use num_complex::Complex64;
 
 /// A basis prepared for projection on one grid.
@@ -35,6 +37,32 @@ impl Projector {
                 *dst = src.conj() * da;
             }
         }
+        Ok(Projector {
+            basis_conj: b,
+            grid: *grid,
+        })
+    }
+
+    /// Like [`Projector::new`], taking the sampled basis by value: conjugated and scaled in
+    /// place, so no second copy of the basis is held.
+    pub fn from_array(basis: Array3<Complex64>, grid: &Grid) -> Result<Projector> {
+        let (m, ny, nx) = basis.dim();
+        if (ny, nx) != (grid.ny, grid.nx) {
+            return Err(Error::Input(format!(
+                "basis sampled on {nx}x{ny} pixels, the decoded grid has {}x{}",
+                grid.nx, grid.ny
+            )));
+        }
+        let da = grid.pixel_area_um2();
+        let basis = if basis.is_standard_layout() {
+            basis
+        } else {
+            basis.as_standard_layout().to_owned()
+        };
+        let mut b = basis
+            .into_shape_with_order((m, nx * ny))
+            .map_err(|e| Error::Input(format!("basis array: {e}")))?;
+        b.mapv_inplace(|z| z.conj() * da);
         Ok(Projector {
             basis_conj: b,
             grid: *grid,

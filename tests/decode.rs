@@ -568,6 +568,8 @@ fn batched_projection_equals_direct_sums() {
     });
     let pr = Projector::new(basis.view(), &g).unwrap();
     let c = pr.project(fields.view());
+    let owned = Projector::from_array(basis.clone(), &g).unwrap();
+    assert_eq!(owned.project(fields.view()), c);
     for f in 0..3 {
         for k in 0..modes {
             let mut s = Complex64::default();

@@ -139,8 +139,7 @@ pub fn projectors(p: &Prepared, basis: Option<BasisSampler>) -> Result<Vec<Proje
         .iter()
         .map(|c| {
             let g = c.grid();
-            let arr = b(&g, &c.alignment)?;
-            Projector::new(arr.view(), &g)
+            Projector::from_array(b(&g, &c.alignment)?, &g)
         })
         .collect()
 }
