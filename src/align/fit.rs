@@ -15,6 +15,7 @@
 //!    these cost one inverse FFT per mode) and of scale.
 //! 3. Nelder-Mead on all free parameters in scaled units (see [`optimise`]), with one
 //!    restart.
+//!
 //! Rotation is fitted only when the objective depends on it: a basis made of complete
 //! degenerate sets (every LP group with both cos and sin, every HG/LG group whole) captures
 //! the same power at every rotation, since rotation mixes modes within a group only.
@@ -155,7 +156,7 @@ fn set(a: &mut Alignment, p: P, v: f64) {
 /// `frac` of the peak (suppresses the bias of a noise floor towards the grid centre).
 pub fn centroid_um(power: &[f64], grid: &Grid, frac: f64) -> Option<[f64; 2]> {
     let peak = power.iter().cloned().fold(0.0, f64::max);
-    if !(peak > 0.0) {
+    if peak.is_nan() || peak <= 0.0 {
         return None;
     }
     let (mut s, mut sx, mut sy) = (0.0, 0.0, 0.0);
@@ -182,7 +183,7 @@ fn spectral_tilt_mrad(red: &Reduced, prop: &super::objective::Propagator) -> Opt
         }
     }
     let peak = acc.iter().cloned().fold(0.0, f64::max);
-    if !(peak > 0.0) {
+    if peak.is_nan() || peak <= 0.0 {
         return None;
     }
     let (mut s, mut fx, mut fy) = (0.0, 0.0, 0.0);

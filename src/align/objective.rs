@@ -339,6 +339,9 @@ pub fn geometry(a: &Alignment) -> Alignment {
     }
 }
 
+/// Basis spectra shared between evaluations.
+type Spectra = Arc<Vec<Vec<Complex64>>>;
+
 /// The captured-power objective over one channel's reduced fields. The basis and its
 /// spectra are cached for the last geometry, so a search over tilt and defocus alone does
 /// not resample the modes.
@@ -346,7 +349,7 @@ pub struct Objective<'a, S> {
     pub reduced: &'a Reduced,
     pub sampler: S,
     prop: Propagator,
-    cache: std::sync::Mutex<Option<(Alignment, Arc<Vec<Vec<Complex64>>>)>>,
+    cache: std::sync::Mutex<Option<(Alignment, Spectra)>>,
     /// Objective evaluations so far.
     pub evaluations: std::sync::atomic::AtomicUsize,
 }
