@@ -6,7 +6,9 @@ use num_complex::Complex64;
 use std::path::Path;
 
 fn demo() -> &'static Path {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("frames-demo").leak()
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("frames-demo")
+        .leak()
 }
 
 fn load_c2(p: &Path) -> Array2<Complex64> {
@@ -37,8 +39,7 @@ fn run_on_the_demo_recovers_the_simulated_device() {
     );
     let summary: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     let truth: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(demo().join("truth.json")).unwrap())
-            .unwrap();
+        serde_json::from_str(&std::fs::read_to_string(demo().join("truth.json")).unwrap()).unwrap();
     let il = summary["insertion_loss_db"].as_f64().unwrap();
     let mdl = summary["mode_dependent_loss_db"].as_f64().unwrap();
     let il_t = truth["truth"]["insertion_loss_db"].as_f64().unwrap();
@@ -106,7 +107,10 @@ fn run_on_the_demo_recovers_the_simulated_device() {
         .arg("-q")
         .assert()
         .code(2);
-    assert_eq!(before, std::fs::read(out.path().join("matrix.npy")).unwrap());
+    assert_eq!(
+        before,
+        std::fs::read(out.path().join("matrix.npy")).unwrap()
+    );
 }
 
 /// Usage errors exit 2; a missing setup file is named.
@@ -133,7 +137,10 @@ fn frame_count_mismatch_is_refused() {
     let dir = tempfile::tempdir().unwrap();
     let text = std::fs::read_to_string(demo().join("setup.toml")).unwrap();
     let text = text.replace("repeats = 1", "repeats = 2");
-    let text = text.replace("\"launch.tif\"", &format!("{:?}", demo().join("launch.tif")));
+    let text = text.replace(
+        "\"launch.tif\"",
+        &format!("{:?}", demo().join("launch.tif")),
+    );
     let text = text.replace("\"dark.tif\"", &format!("{:?}", demo().join("dark.tif")));
     let text = text.replace(
         "\"reference.tif\"",
