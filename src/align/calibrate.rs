@@ -29,18 +29,7 @@ pub struct RawFields {
     pub warnings: Vec<String>,
 }
 
-/// The launch sequence named in the setup (frames.stack), resolved.
-pub fn stack_path(setup: &Setup) -> Result<PathBuf> {
-    match &setup.frames.stack {
-        Some(p) => Ok(setup.resolve(p)),
-        None => Err(Error::setup(
-            setup.file_name(),
-            "frames.stack",
-            "(missing)",
-            "name the launch sequence to calibrate on",
-        )),
-    }
-}
+pub use crate::pipeline::stack_path;
 
 /// Decode `frames` with every channel's tilt and defocus set to zero (geometry kept).
 pub fn decode_raw(

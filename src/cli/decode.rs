@@ -71,21 +71,8 @@ pub fn run(args: &DecodeArgs) -> Result<Outcome> {
 
 fn write_outputs(out: &OutDir, d: &Decoded, labels: &[String]) -> Result<()> {
     out.write_npy("coefficients.npy", &d.coefficients)?;
-    let mut csv = String::from("frame,channel,captured_power,saturated_px,field_power\n");
     let (nf, nc) = d.captured.dim();
-    for f in 0..nf {
-        for c in 0..nc {
-            let _ = writeln!(
-                csv,
-                "{f},{},{:.6e},{},{:.6e}",
-                d.channels[c].name,
-                d.captured[[f, c]],
-                d.saturated[[f, c]],
-                d.field_power[[f, c]]
-            );
-        }
-    }
-    out.write_text("captured.csv", &csv)?;
+    out.write_text("captured.csv", &crate::pipeline::captured_csv(d))?;
     out.write_json(
         "decode.json",
         &serde_json::json!({
