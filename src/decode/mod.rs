@@ -15,7 +15,7 @@ use crate::frames::{mean_frame, FrameStack};
 use crate::grid::{Alignment, Grid};
 use crate::projection::{field_power, Projector};
 use crate::setup::Setup;
-use ndarray::{s, Array2, Array3};
+use ndarray::{s, Array2, Array3, Axis};
 use num_complex::Complex64;
 use rayon::prelude::*;
 use serde::Serialize;
@@ -211,13 +211,23 @@ pub fn decode_prepared(
         }
         decode_batch(p, &bufs[..n], &mut b, &mut scratch, per, fw);
         if !projectors.is_empty() {
-            b.coeffs
-                .par_iter_mut()
-                .zip(b.fields.par_iter())
-                .zip(projectors.par_iter())
-                .for_each(|((c, f), q)| {
-                    q.project_into(f.slice(s![..n, ..]), c.slice_mut(s![..n, ..]));
-                });
+            // One matrix product per (channel, slice of frames), so every thread projects
+            // even when there is a single channel.
+            let rows_per = n.div_ceil(threads).max(1);
+            let mut jobs = Vec::with_capacity(nch * threads);
+            for ((c, f), q) in b.coeffs.iter_mut().zip(&b.fields).zip(projectors) {
+                let mut rest = c.slice_mut(s![..n, ..]);
+                let mut k = 0;
+                while k < n {
+                    let take = rows_per.min(n - k);
+                    let (head, tail) = rest.split_at(Axis(0), take);
+                    jobs.push((q, f.slice(s![k..k + take, ..]), head));
+                    rest = tail;
+                    k += take;
+                }
+            }
+            jobs.into_par_iter()
+                .for_each(|(q, fc, cc)| q.project_into(fc, cc));
         }
         for i in 0..n {
             for (ch, coeffs) in b.coeffs.iter().enumerate() {
