@@ -211,9 +211,10 @@ pub fn decode_prepared(
         }
         decode_batch(p, &bufs[..n], &mut b, &mut scratch, per, fw);
         if !projectors.is_empty() {
-            // One matrix product per (channel, slice of frames), so every thread projects
-            // even when there is a single channel.
-            let rows_per = n.div_ceil(threads).max(1);
+            // One matrix product per (channel, slice of frames): channels in parallel, and
+            // their frames split further only when there are fewer channels than threads.
+            let slices = (threads / nch.max(1)).max(1);
+            let rows_per = n.div_ceil(slices).max(1);
             let mut jobs = Vec::with_capacity(nch * threads);
             for ((c, f), q) in b.coeffs.iter_mut().zip(&b.fields).zip(projectors) {
                 let mut rest = c.slice_mut(s![..n, ..]);
