@@ -83,12 +83,36 @@ fn bench(cr: &mut Criterion) {
     grp.finish();
 }
 
+/// The bundled demo from frames to summary (decode + projection + assembly + drift + analysis)
+/// against its decode alone, in the same run.
+fn demo(cr: &mut Criterion) {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("frames-demo/setup.toml");
+    let setup = modegram::setup::Setup::load(&path).expect("demo setup");
+    let basis = modegram::modes::Basis::from_setup(&setup).expect("demo basis");
+    let mut grp = cr.benchmark_group("demo_sequence");
+    grp.bench_function("baseline_decode_only", |b| {
+        b.iter(|| {
+            black_box(
+                modegram::pipeline::decode_sequence(&setup, &basis, None, false, &|_| {}).unwrap(),
+            )
+        })
+    });
+    grp.bench_function("decode_to_summary", |b| {
+        b.iter(|| {
+            let d =
+                modegram::pipeline::decode_sequence(&setup, &basis, None, false, &|_| {}).unwrap();
+            black_box(modegram::pipeline::analyse_sequence(&setup, &basis, &d).unwrap())
+        })
+    });
+    grp.finish();
+}
+
 criterion_group! {
     name = benches;
     config = Criterion::default()
         .sample_size(10)
         .warm_up_time(Duration::from_millis(500))
         .measurement_time(Duration::from_secs(2));
-    targets = bench
+    targets = bench, demo
 }
 criterion_main!(benches);

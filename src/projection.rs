@@ -7,9 +7,7 @@
 //! orthonormal basis, by Parseval's identity for orthonormal expansions).
 use crate::error::{Error, Result};
 use crate::grid::Grid;
-use ndarray::{
-    linalg::general_mat_mul, Array2, Array3, ArrayView2, ArrayView3, ArrayViewMut2, Axis,
-};
+use ndarray::{linalg::general_mat_mul, Array2, Array3, ArrayView2, ArrayView3, ArrayViewMut2};
 use num_complex::Complex64;
 
 /// A basis prepared for projection on one grid.
@@ -23,24 +21,7 @@ pub struct Projector {
 impl Projector {
     /// `basis` has shape (modes, ny, nx) and must match `grid`.
     pub fn new(basis: ArrayView3<Complex64>, grid: &Grid) -> Result<Projector> {
-        let (m, ny, nx) = basis.dim();
-        if (ny, nx) != (grid.ny, grid.nx) {
-            return Err(Error::Input(format!(
-                "basis sampled on {nx}x{ny} pixels, the decoded grid has {}x{}",
-                grid.nx, grid.ny
-            )));
-        }
-        let da = grid.pixel_area_um2();
-        let mut b = Array2::<Complex64>::zeros((m, nx * ny));
-        for (k, mut row) in b.axis_iter_mut(Axis(0)).enumerate() {
-            for (dst, src) in row.iter_mut().zip(basis.index_axis(Axis(0), k).iter()) {
-                *dst = src.conj() * da;
-            }
-        }
-        Ok(Projector {
-            basis_conj: b,
-            grid: *grid,
-        })
+        Projector::from_array(basis.to_owned(), grid)
     }
 
     /// Like [`Projector::new`], taking the sampled basis by value: conjugated and scaled in

@@ -316,16 +316,16 @@ impl Default for DecodeSpec {
     }
 }
 
-fn one() -> f64 {
+pub(crate) fn one() -> f64 {
     1.0
 }
 fn two() -> f64 {
     2.0
 }
-fn yes() -> bool {
+pub(crate) fn yes() -> bool {
     true
 }
-fn one_usize() -> usize {
+pub(crate) fn one_usize() -> usize {
     1
 }
 fn default_cladding_index() -> f64 {
@@ -340,7 +340,7 @@ fn default_solver_extent() -> f64 {
 fn default_cutoff_margin_b() -> f64 {
     0.01
 }
-fn default_pols() -> Vec<String> {
+pub(crate) fn default_pols() -> Vec<String> {
     vec!["H".into(), "V".into()]
 }
 fn default_dc_exclusion() -> f64 {

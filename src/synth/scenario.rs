@@ -91,7 +91,7 @@ pub struct SynthChannel {
     #[serde(default)]
     pub rotation_deg: f64,
     /// TRUE magnification correction.
-    #[serde(default = "one")]
+    #[serde(default = "crate::setup::one")]
     pub scale: f64,
     /// TRUE residual tilt of the signal, milliradians (fibre plane).
     #[serde(default)]
@@ -175,20 +175,20 @@ impl Default for Transfer {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct SynthLaunch {
-    #[serde(default = "default_pols")]
+    #[serde(default = "crate::setup::default_pols")]
     pub polarizations: Vec<String>,
     #[serde(default)]
     pub reference_every: usize,
     #[serde(default)]
     pub reference_input: usize,
-    #[serde(default = "one_usize")]
+    #[serde(default = "crate::setup::one_usize")]
     pub repeats: usize,
 }
 
 impl Default for SynthLaunch {
     fn default() -> Self {
         SynthLaunch {
-            polarizations: default_pols(),
+            polarizations: crate::setup::default_pols(),
             reference_every: 0,
             reference_input: 0,
             repeats: 1,
@@ -201,16 +201,16 @@ impl Default for SynthLaunch {
 #[serde(deny_unknown_fields)]
 pub struct Noise {
     /// Poisson noise of the photo-electrons.
-    #[serde(default = "yes")]
+    #[serde(default = "crate::setup::yes")]
     pub shot: bool,
     /// Gaussian read noise of `sensor.read_noise_counts`.
-    #[serde(default = "yes")]
+    #[serde(default = "crate::setup::yes")]
     pub read: bool,
     /// Round to integer counts and write TIFF; off: float frames written as NPY.
-    #[serde(default = "yes")]
+    #[serde(default = "crate::setup::yes")]
     pub quantisation: bool,
     /// Clip at `camera.saturation_counts` (default the format's maximum).
-    #[serde(default = "yes")]
+    #[serde(default = "crate::setup::yes")]
     pub saturation: bool,
     /// dark.tif / reference.tif: 0 = the noise-free expectation; N = the mean of N noisy frames.
     #[serde(default)]
@@ -241,15 +241,6 @@ pub struct Drift {
     pub rate_rad_per_frame: f64,
 }
 
-fn one() -> f64 {
-    1.0
-}
-fn yes() -> bool {
-    true
-}
-fn one_usize() -> usize {
-    1
-}
 fn four() -> usize {
     4
 }
@@ -267,9 +258,6 @@ fn default_dark() -> f64 {
 }
 fn default_ref_waist() -> f64 {
     1.0e6
-}
-fn default_pols() -> Vec<String> {
-    vec!["H".into(), "V".into()]
 }
 
 impl Scenario {
