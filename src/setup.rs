@@ -357,6 +357,23 @@ fn finite_positive(file: &str, key: &str, v: f64) -> Result<()> {
     Ok(())
 }
 
+/// Parse TOML text read from `path` (errors name the file) and give the folder that relative
+/// paths in it resolve against ("." for a bare file name). Shared by setups and scenarios.
+pub(crate) fn parse_toml<T: serde::de::DeserializeOwned>(
+    text: &str,
+    path: &Path,
+) -> Result<(T, PathBuf)> {
+    let value: T = toml::from_str(text).map_err(|e| Error::Parse {
+        file: path.display().to_string(),
+        message: e.to_string(),
+    })?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    Ok((value, dir))
+}
+
 impl Setup {
     /// Read, parse, resolve paths and validate a setup file.
     pub fn load(path: &Path) -> Result<Setup> {
@@ -366,19 +383,9 @@ impl Setup {
 
     /// Parse and validate setup text as if read from `path` (paths resolve next to it).
     pub fn from_toml(text: &str, path: &Path) -> Result<Setup> {
-        let file = path.display().to_string();
-        let mut s: Setup = toml::from_str(text).map_err(|e| Error::Parse {
-            file: file.clone(),
-            message: e.to_string(),
-        })?;
+        let (mut s, dir): (Setup, PathBuf) = parse_toml(text, path)?;
         s.file = path.to_path_buf();
-        s.dir = path
-            .parent()
-            .map(Path::to_path_buf)
-            .unwrap_or_else(|| PathBuf::from("."));
-        if s.dir.as_os_str().is_empty() {
-            s.dir = PathBuf::from(".");
-        }
+        s.dir = dir;
         s.validate()?;
         Ok(s)
     }

@@ -269,16 +269,9 @@ impl Scenario {
 
     /// Parse and validate scenario text as if read from `path`.
     pub fn from_toml(text: &str, path: &Path) -> Result<Scenario> {
-        let file = path.display().to_string();
-        let mut s: Scenario = toml::from_str(text).map_err(|e| Error::Parse {
-            file: file.clone(),
-            message: e.to_string(),
-        })?;
+        let (mut s, dir): (Scenario, PathBuf) = crate::setup::parse_toml(text, path)?;
         s.file = path.to_path_buf();
-        s.dir = match path.parent() {
-            Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-            _ => PathBuf::from("."),
-        };
+        s.dir = dir;
         s.validate()?;
         Ok(s)
     }
