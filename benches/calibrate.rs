@@ -9,7 +9,7 @@
 //! - watch: decode one 1024^2 frame plus its live figures.
 use criterion::{Criterion, Throughput};
 use modegram::align::analytic::SplitMix;
-use modegram::align::compact::{Compact, Extent};
+use modegram::align::compact::{BasisExtent, Compact, Extent, FineFields};
 use modegram::align::fit::{fit_channel, FitContext, FitSpec};
 use modegram::align::live::LiveChannel;
 use modegram::align::objective::{apply_tilt, geometry, Objective, Propagator, Reduced};
@@ -160,18 +160,22 @@ fn main() {
         .warm_up_time(Duration::from_millis(500))
         .measurement_time(Duration::from_secs(3))
         .configure_from_args();
-    let compact = Compact::new(
-        f.view(),
-        &grid,
+    // the fitting grid of the fit's last stage (tail 1e-5, one depth of focus of room)
+    let fine = FineFields::new(f.view(), &grid);
+    let bext = BasisExtent::new(
         basis.sample(&grid, &Alignment::default()).view(),
-        &Alignment::default(),
-        &Extent {
-            wavelength_nm: 1064.0,
-            core_radius_um: 25.0,
-            na: 0.2,
-            defocus_range_um: 4.0 * 1.064 / 0.04,
-        },
+        &grid,
+        [0.0, 0.0],
     );
+    let ext = Extent {
+        wavelength_nm: 1064.0,
+        center_um: None,
+        around: vec![Alignment::default()],
+        center_margin_um: 2.5,
+        defocus_margin_um: 1.064 / 0.04,
+        tail: 1e-5,
+    };
+    let compact = Compact::new(&fine, &bext, &ext);
     let cg = compact.grid;
     println!(
         "compact grid: {} x {} at {:.3} um (decoding grid 128 x 128 at 0.8 um)",
@@ -206,20 +210,7 @@ fn main() {
         b.iter(|| basis.sample(&cg, &Alignment::default()))
     });
     g.bench_function("compact 220 fields", |b| {
-        b.iter(|| {
-            Compact::new(
-                f.view(),
-                &grid,
-                basis.sample(&grid, &Alignment::default()).view(),
-                &Alignment::default(),
-                &Extent {
-                    wavelength_nm: 1064.0,
-                    core_radius_um: 25.0,
-                    na: 0.2,
-                    defocus_range_um: 4.0 * 1.064 / 0.04,
-                },
-            )
-        })
+        b.iter(|| Compact::new(&fine, &bext, &ext))
     });
     g.bench_function("reduce 220 frames to principal components", |b| {
         b.iter(|| Reduced::new(compact.fields.view(), &cg, 1064.0, basis.len() + 10))

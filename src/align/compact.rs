@@ -18,31 +18,172 @@
 //! Its Applications, 3rd ed., ch. 10, sampling theorem); the lattice points outside the
 //! compact grid carry no mode power. The same argument keeps the modes' normalisation.
 //!
-//! Band and extent. `f_m` is the half-width of the box holding all but 1e-8 of the basis
-//! power spectrum; the band is `f_B = 1.2 f_m + |f_t| + 0.1 f_m` with `f_t` the fields'
+//! Band and extent. `f_m(tail)` is the half-width of the box holding all but `tail` of the
+//! basis power spectrum and `r_m(tail)` the radius around the basis centre holding all but
+//! `tail` of its power ([`BasisExtent`]); modes near cut-off have long evanescent tails, so
+//! the tail sets the trade between size and fidelity (the fit searches on a loose grid
+//! and refines on a tight one). The band is `f_B = 1.3 f_m + |f_t|`, with `f_t` the fields'
 //! spectral centroid (a residual tilt t moves the spectrum by t / lambda,
-//! docs/conventions.md), room for a 20 % scale change and for the tilt search. `r_m` is the
-//! radius around the start centre holding all but 1e-8 of the basis power; the grid covers
-//! the disk of radius `r_m + 0.15 a + |c_0 - c_s| + (|dz_s| + 4 lambda / NA^2) lambda f_m`
-//! around the fields' centroid `c_0` (start centre `c_s`, core radius `a`): room for the
-//! centre search and for the spreading of the modes over the defocus search.
+//! docs/conventions.md): room for a 20 % scale change and for the tilt search. The grid
+//! covers the disk of radius `r_m + margin + max |c - c_0| + (max |dz| + dz_margin) lambda f_B`
+//! around its centre `c_0`, the maxima over the alignments it must hold: room for the
+//! centre search and for the spreading of the defocused modes.
 use super::objective::{freq, Fft2};
 use crate::grid::{Alignment, Grid};
 use ndarray::{linalg::general_mat_mul, Array2, Array3, ArrayView3, Axis};
 use num_complex::Complex64;
 use rayon::prelude::*;
 
-/// Part of the basis power allowed outside the band and outside the compact grid.
-const TAIL: f64 = 1e-8;
-
-/// Physical context the extent of the compact grid depends on.
-#[derive(Debug, Clone, Copy)]
+/// What the compact grid must hold.
+#[derive(Debug, Clone)]
 pub struct Extent {
     pub wavelength_nm: f64,
-    pub core_radius_um: f64,
-    pub na: f64,
-    /// Half-width of the defocus search around the start, micrometres.
-    pub defocus_range_um: f64,
+    /// Centre of the grid, um; None: the fields' power centroid (or the first alignment's
+    /// centre when the fields are empty).
+    pub center_um: Option<[f64; 2]>,
+    /// Alignments whose modes must fit on the grid (centre and defocus).
+    pub around: Vec<Alignment>,
+    /// Room for the centre search beyond those centres, um.
+    pub center_margin_um: f64,
+    /// Room for the defocus search beyond those defocus values, um.
+    pub defocus_margin_um: f64,
+    /// Part of the basis power allowed outside the band and outside the grid.
+    pub tail: f64,
+}
+
+/// The decoded fields' spectra and power figures, computed once per channel.
+pub struct FineFields {
+    pub grid: Grid,
+    /// 2-D FFT of each frame (FFT bin order).
+    spectra: Vec<Vec<Complex64>>,
+    /// Each frame's power sum |F|^2 dA.
+    pub frame_power: Vec<f64>,
+    /// Centroid of the summed power (pixels above 5 % of the peak), um.
+    pub centroid_um: Option<[f64; 2]>,
+    /// Centroid of the summed power spectrum (bins above 1 % of the peak), cycles/um.
+    pub spectral_centroid: Option<[f64; 2]>,
+}
+
+impl FineFields {
+    pub fn new(fields: ArrayView3<Complex64>, grid: &Grid) -> FineFields {
+        let (_, ny, nx) = fields.dim();
+        assert_eq!((ny, nx), (grid.ny, grid.nx), "fields must lie on the grid");
+        let fft = Fft2::new(ny, nx);
+        let da = grid.pixel_area_um2();
+        let per: Vec<(Vec<Complex64>, f64)> = fields
+            .axis_iter(Axis(0))
+            .into_par_iter()
+            .map_init(
+                || vec![Complex64::new(0.0, 0.0); fft.scratch_len()],
+                |scratch, f| {
+                    let mut d: Vec<Complex64> = f.iter().copied().collect();
+                    let p: f64 = d.iter().map(|z| z.norm_sqr()).sum::<f64>() * da;
+                    fft.forward(&mut d, scratch);
+                    (d, p)
+                },
+            )
+            .collect();
+        let mut power_map = vec![0.0; grid.len()];
+        for f in fields.axis_iter(Axis(0)) {
+            power_map
+                .iter_mut()
+                .zip(f.iter())
+                .for_each(|(a, z)| *a += z.norm_sqr());
+        }
+        let mut power_spec = vec![0.0; grid.len()];
+        for (d, _) in &per {
+            power_spec
+                .iter_mut()
+                .zip(d)
+                .for_each(|(a, z)| *a += z.norm_sqr());
+        }
+        FineFields {
+            grid: *grid,
+            centroid_um: super::fit::centroid_um(&power_map, grid, 0.05),
+            spectral_centroid: spectral_centroid(&power_spec, grid),
+            frame_power: per.iter().map(|x| x.1).collect(),
+            spectra: per.into_iter().map(|x| x.0).collect(),
+        }
+    }
+
+    /// Tilt from the spectral centroid, mrad.
+    pub fn tilt_start_mrad(&self, wavelength_nm: f64) -> Option<[f64; 2]> {
+        let wl_um = wavelength_nm * 1e-3;
+        self.spectral_centroid
+            .map(|f| [1e3 * wl_um * f[0], 1e3 * wl_um * f[1]])
+    }
+}
+
+/// Power map and power spectrum of the basis sampled on the decoding grid, for its extent.
+pub struct BasisExtent {
+    grid: Grid,
+    center_um: [f64; 2],
+    power: Vec<f64>,
+    spectrum: Vec<f64>,
+}
+
+impl BasisExtent {
+    /// `basis` (modes x ny x nx) sampled on `grid` with its axis at `center_um`.
+    pub fn new(basis: ArrayView3<Complex64>, grid: &Grid, center_um: [f64; 2]) -> BasisExtent {
+        let fft = Fft2::new(grid.ny, grid.nx);
+        let zero = || (vec![0.0; grid.len()], vec![0.0; grid.len()]);
+        let (power, spectrum) = basis
+            .axis_iter(Axis(0))
+            .into_par_iter()
+            .fold(
+                || {
+                    (
+                        zero(),
+                        vec![Complex64::new(0.0, 0.0); fft.scratch_len()],
+                        vec![Complex64::new(0.0, 0.0); grid.len()],
+                    )
+                },
+                |((mut p, mut s), mut scratch, mut work), m| {
+                    for ((o, w), z) in p.iter_mut().zip(work.iter_mut()).zip(m.iter()) {
+                        *o += z.norm_sqr();
+                        *w = *z;
+                    }
+                    fft.forward(&mut work, &mut scratch);
+                    for (o, z) in s.iter_mut().zip(&work) {
+                        *o += z.norm_sqr();
+                    }
+                    ((p, s), scratch, work)
+                },
+            )
+            .map(|(ps, _, _)| ps)
+            .reduce(zero, |(mut a, mut b), (c, d)| {
+                a.iter_mut().zip(&c).for_each(|(x, y)| *x += y);
+                b.iter_mut().zip(&d).for_each(|(x, y)| *x += y);
+                (a, b)
+            });
+        BasisExtent {
+            grid: *grid,
+            center_um,
+            power,
+            spectrum,
+        }
+    }
+
+    /// f_m(tail), cycles/um (at most the grid's Nyquist frequency).
+    pub fn band(&self, tail: f64) -> f64 {
+        band_half_width(&self.spectrum, &self.grid, tail).min(0.5 / self.grid.pitch_um)
+    }
+
+    /// r_m(tail), um.
+    pub fn radius(&self, tail: f64) -> f64 {
+        let g = &self.grid;
+        let mut v: Vec<(f64, f64)> = self
+            .power
+            .iter()
+            .enumerate()
+            .map(|(i, &p)| {
+                let dx = g.x_um(i % g.nx) - self.center_um[0];
+                let dy = g.y_um(i / g.nx) - self.center_um[1];
+                (dx.hypot(dy), p)
+            })
+            .collect();
+        outer_radius(&mut v, tail)
+    }
 }
 
 /// One channel's fields on the compact grid (see the module header).
@@ -58,14 +199,12 @@ pub struct Compact {
     /// The band half-width f_B and the basis band f_m, cycles per micrometre.
     pub band_cycles_per_um: f64,
     pub mode_band_cycles_per_um: f64,
-    /// Centroid of the fields' power (pixels above 5 % of the peak), um.
-    pub centroid_um: Option<[f64; 2]>,
-    /// Tilt from the fields' spectral centroid, mrad.
-    pub tilt_start_mrad: Option<[f64; 2]>,
     /// Box the basis centre may move in without leaving the grid: [lo, hi] per axis, um.
     pub center_bounds_um: [[f64; 2]; 2],
     /// Largest |tilt| per axis that keeps the tilted modes inside the band, mrad.
     pub tilt_max_mrad: f64,
+    /// Largest |defocus| the grid was sized for, um.
+    pub defocus_limit_um: f64,
 }
 
 /// Smallest even n >= m whose prime factors are 2, 3 and 5 (fast FFT sizes).
@@ -119,101 +258,21 @@ fn outer_radius(v: &mut [(f64, f64)], tail: f64) -> f64 {
 }
 
 impl Compact {
-    /// Resample `fields` (frames x ny x nx on `grid`) for a basis `basis` (modes x ny x nx,
-    /// sampled on `grid` at the start's geometry `start`).
-    pub fn new(
-        fields: ArrayView3<Complex64>,
-        grid: &Grid,
-        basis: ArrayView3<Complex64>,
-        start: &Alignment,
-        ext: &Extent,
-    ) -> Compact {
-        let (nf, ny, nx) = fields.dim();
-        assert_eq!((ny, nx), (grid.ny, grid.nx), "fields must lie on the grid");
-        let fft = Fft2::new(ny, nx);
-        let da = grid.pixel_area_um2();
+    /// Resample the fields of `fine` for a basis of extent `basis` onto a grid holding
+    /// `ext`.
+    pub fn new(fine: &FineFields, basis: &BasisExtent, ext: &Extent) -> Compact {
+        let grid = &fine.grid;
+        let (ny, nx) = (grid.ny, grid.nx);
         let wl_um = ext.wavelength_nm * 1e-3;
-
-        // The basis: spatial and spectral extent.
-        let (mode_power, mode_spectrum) = basis
-            .axis_iter(Axis(0))
-            .into_par_iter()
-            .fold(
-                || {
-                    (
-                        vec![0.0; grid.len()],
-                        vec![0.0; grid.len()],
-                        vec![Complex64::new(0.0, 0.0); fft.scratch_len()],
-                        vec![Complex64::new(0.0, 0.0); grid.len()],
-                    )
-                },
-                |(mut p, mut s, mut scratch, mut work), m| {
-                    for ((o, w), z) in p.iter_mut().zip(work.iter_mut()).zip(m.iter()) {
-                        *o += z.norm_sqr();
-                        *w = *z;
-                    }
-                    fft.forward(&mut work, &mut scratch);
-                    for (o, z) in s.iter_mut().zip(&work) {
-                        *o += z.norm_sqr();
-                    }
-                    (p, s, scratch, work)
-                },
-            )
-            .map(|(p, s, _, _)| (p, s))
-            .reduce(
-                || (vec![0.0; grid.len()], vec![0.0; grid.len()]),
-                |(mut a, mut b), (c, d)| {
-                    a.iter_mut().zip(&c).for_each(|(x, y)| *x += y);
-                    b.iter_mut().zip(&d).for_each(|(x, y)| *x += y);
-                    (a, b)
-                },
-            );
         let f_nyq = 0.5 / grid.pitch_um;
-        let f_m = band_half_width(&mode_spectrum, grid, TAIL).min(f_nyq);
-        let r_m = {
-            let mut v: Vec<(f64, f64)> = mode_power
-                .iter()
-                .enumerate()
-                .map(|(i, &p)| {
-                    let dx = grid.x_um(i % nx) - start.center_um[0];
-                    let dy = grid.y_um(i / nx) - start.center_um[1];
-                    (dx.hypot(dy), p)
-                })
-                .collect();
-            outer_radius(&mut v, TAIL)
-        };
-
-        // The fields: spectra, power per frame, power map and power spectrum.
-        let spectra: Vec<(Vec<Complex64>, f64, Vec<f64>)> = fields
-            .axis_iter(Axis(0))
-            .into_par_iter()
-            .map_init(
-                || vec![Complex64::new(0.0, 0.0); fft.scratch_len()],
-                |scratch, f| {
-                    let mut d: Vec<Complex64> = f.iter().copied().collect();
-                    let p: f64 = d.iter().map(|z| z.norm_sqr()).sum::<f64>() * da;
-                    let map: Vec<f64> = d.iter().map(|z| z.norm_sqr()).collect();
-                    fft.forward(&mut d, scratch);
-                    (d, p, map)
-                },
-            )
-            .collect();
-        let frame_power: Vec<f64> = spectra.iter().map(|s| s.1).collect();
-        let mut power_map = vec![0.0; grid.len()];
-        let mut power_spec = vec![0.0; grid.len()];
-        for (d, _, map) in &spectra {
-            power_map.iter_mut().zip(map).for_each(|(a, b)| *a += b);
-            power_spec
-                .iter_mut()
-                .zip(d)
-                .for_each(|(a, z)| *a += z.norm_sqr());
-        }
-        let centroid_um = super::fit::centroid_um(&power_map, grid, 0.05);
-        let f_t = spectral_centroid(&power_spec, grid);
-        let tilt_start_mrad = f_t.map(|f| [1e3 * wl_um * f[0], 1e3 * wl_um * f[1]]);
+        let f_m = basis.band(ext.tail);
+        let r_m = basis.radius(ext.tail);
 
         // Band and pitch.
-        let ft_abs = f_t.map(|f| f[0].abs().max(f[1].abs())).unwrap_or(0.0);
+        let ft_abs = fine
+            .spectral_centroid
+            .map(|f| f[0].abs().max(f[1].abs()))
+            .unwrap_or(0.0);
         let f_b = (1.3 * f_m + ft_abs).min(f_nyq);
         let pitch_um = if f_b >= f_nyq || f_b <= 0.0 {
             grid.pitch_um
@@ -221,13 +280,23 @@ impl Compact {
             (0.5 / f_b).max(grid.pitch_um)
         };
         // Extent.
-        let c_crop = centroid_um.unwrap_or(start.center_um);
-        let shift = (c_crop[0] - start.center_um[0]).hypot(c_crop[1] - start.center_um[1]);
-        let dof = wl_um / (ext.na * ext.na).max(1e-12);
-        let spread = (start.defocus_um.abs() + ext.defocus_range_um.max(4.0 * dof))
-            * wl_um
-            * f_m.max(ext.na / wl_um);
-        let radius = r_m + 0.15 * ext.core_radius_um + shift + spread;
+        let first = ext.around.first().copied().unwrap_or_default();
+        let c0 = ext
+            .center_um
+            .or(fine.centroid_um)
+            .unwrap_or(first.center_um);
+        let shift = ext
+            .around
+            .iter()
+            .map(|a| (a.center_um[0] - c0[0]).hypot(a.center_um[1] - c0[1]))
+            .fold(0.0, f64::max);
+        let dz = ext
+            .around
+            .iter()
+            .map(|a| a.defocus_um.abs())
+            .fold(0.0, f64::max);
+        let spread = (dz + ext.defocus_margin_um) * wl_um * f_b;
+        let radius = r_m + ext.center_margin_um + shift + spread;
         let fov_x = nx as f64 * grid.pitch_um;
         let fov_y = ny as f64 * grid.pitch_um;
         let n_for = |fov: f64| {
@@ -240,8 +309,8 @@ impl Compact {
             ny: ncy,
             pitch_um,
             origin_um: [
-                c_crop[0] - (ncx / 2) as f64 * pitch_um,
-                c_crop[1] - (ncy / 2) as f64 * pitch_um,
+                c0[0] - (ncx / 2) as f64 * pitch_um,
+                c0[1] - (ncy / 2) as f64 * pitch_um,
             ],
         };
 
@@ -266,40 +335,31 @@ impl Compact {
         let ey = expo(&ky, ny, ncy, &|j| cgrid.y_um(j) - grid.y_um(0));
         let ext_t = ex.t().to_owned();
         let norm = 1.0 / grid.len() as f64;
+        let nf = fine.spectra.len();
         let mut out = Array3::<Complex64>::zeros((nf, ncy, ncx));
         out.axis_iter_mut(Axis(0))
             .into_par_iter()
-            .zip(spectra.par_iter())
-            .for_each(|(mut o, (d, _, _))| {
+            .zip(fine.spectra.par_iter())
+            .for_each(|(mut o, d)| {
                 let t = Array2::from_shape_fn((ky.len(), kx.len()), |(a, b)| {
                     d[ky[a] * nx + kx[b]] * norm
                 });
                 let mut a = Array2::<Complex64>::zeros((ncy, kx.len()));
-                general_mat_mul(
-                    Complex64::new(1.0, 0.0),
-                    &ey,
-                    &t,
-                    Complex64::new(0.0, 0.0),
-                    &mut a,
-                );
-                general_mat_mul(
-                    Complex64::new(1.0, 0.0),
-                    &a,
-                    &ext_t,
-                    Complex64::new(0.0, 0.0),
-                    &mut o,
-                );
+                let (one, zero) = (Complex64::new(1.0, 0.0), Complex64::new(0.0, 0.0));
+                general_mat_mul(one, &ey, &t, zero, &mut a);
+                general_mat_mul(one, &a, &ext_t, zero, &mut o);
             });
 
         let free = (radius - r_m - spread).max(0.0);
         let lim = |c: f64, n: usize, o: f64| -> [f64; 2] {
-            let lo = o + (r_m).min(n as f64 * pitch_um / 2.0);
-            let hi = o + n as f64 * pitch_um - r_m.min(n as f64 * pitch_um / 2.0);
+            let half = n as f64 * pitch_um / 2.0;
+            let lo = o + r_m.min(half);
+            let hi = o + n as f64 * pitch_um - r_m.min(half);
             [(c - free).max(lo).min(c), (c + free).min(hi).max(c)]
         };
         let center_bounds_um = [
-            lim(c_crop[0], ncx, cgrid.origin_um[0]),
-            lim(c_crop[1], ncy, cgrid.origin_um[1]),
+            lim(c0[0], ncx, cgrid.origin_um[0]),
+            lim(c0[1], ncy, cgrid.origin_um[1]),
         ];
         let f_band = 0.5 / pitch_um;
         let tilt_max_mrad = (1e3 * wl_um * (f_band - f_m))
@@ -308,20 +368,30 @@ impl Compact {
         Compact {
             fields: out,
             grid: cgrid,
-            frame_power,
+            frame_power: fine.frame_power.clone(),
             fine_pixels: grid.len(),
             band_cycles_per_um: f_b,
             mode_band_cycles_per_um: f_m,
-            centroid_um,
-            tilt_start_mrad,
             center_bounds_um,
             tilt_max_mrad,
+            defocus_limit_um: dz + ext.defocus_margin_um,
         }
     }
 
-    /// sum of the frames' power on the decoding grid.
+    /// Sum of the frames' power on the decoding grid.
     pub fn total_power(&self) -> f64 {
         self.frame_power.iter().sum()
+    }
+
+    /// True when the grid holds the modes at `a`: its centre strictly inside the centre
+    /// bounds and |defocus| within the defocus the grid was sized for (callers rebuild the
+    /// grid around `a` otherwise).
+    pub fn holds(&self, a: &Alignment) -> bool {
+        let b = &self.center_bounds_um;
+        let inside = |v: f64, r: [f64; 2]| v > r[0] && v < r[1];
+        inside(a.center_um[0], b[0])
+            && inside(a.center_um[1], b[1])
+            && a.defocus_um.abs() <= self.defocus_limit_um
     }
 }
 
@@ -376,14 +446,21 @@ mod tests {
         let basis = sample_hg(&grid, &start, &idx, 4.0);
         let ext = Extent {
             wavelength_nm: 1064.0,
-            core_radius_um: 8.0,
-            na: 0.12,
-            defocus_range_um: 20.0,
+            center_um: None,
+            around: vec![start],
+            center_margin_um: 1.2,
+            defocus_margin_um: 20.0,
+            tail: 1e-8,
         };
-        let c = Compact::new(fields.view(), &grid, basis.view(), &start, &ext);
+        let fine = FineFields::new(fields.view(), &grid);
+        let c = Compact::new(
+            &fine,
+            &BasisExtent::new(basis.view(), &grid, start.center_um),
+            &ext,
+        );
         assert!(c.grid.len() * 2 < grid.len(), "{:?}", c.grid);
         assert!(c.grid.pitch_um > grid.pitch_um);
-        let t = c.tilt_start_mrad.unwrap();
+        let t = fine.tilt_start_mrad(1064.0).unwrap();
         assert!(
             (t[0] - 4.0).abs() < 1.0 && (t[1] + 3.0).abs() < 1.0,
             "{t:?}"

@@ -31,7 +31,7 @@
 //! Cov = 2 sigma^2 H^-1, H the finite-difference Hessian of S (Press et al., Numerical
 //! Recipes, 3rd ed., section 15.5). The reported figure is sqrt(diag Cov), one standard
 //! deviation; it ignores model error (light outside the basis counts as noise).
-use super::compact::{Compact, Extent};
+use super::compact::{BasisExtent, Compact, Extent, FineFields};
 use super::objective::{captured_total, overlap_power_per_frame, Objective, Reduced};
 use super::optimise::{
     golden_section, gradient, gradient_hessian, nelder_mead, scan, Bounds, NmOptions,
@@ -40,6 +40,12 @@ use crate::grid::{Alignment, Grid};
 use ndarray::{Array3, ArrayView3};
 use num_complex::Complex64;
 use serde::Serialize;
+
+/// Part of the basis power the search grid may leave out (stages 1-2, see
+/// [`super::compact`]): loose, for speed.
+const SEARCH_TAIL: f64 = 1e-3;
+/// Part of the basis power the fitting grid may leave out (stages 3-4).
+const FIT_TAIL: f64 = 1e-5;
 
 /// What to fit and how hard to try.
 #[derive(Debug, Clone)]
@@ -194,51 +200,29 @@ where
     let fields = fields.as_standard_layout();
     let wl_um = ctx.wavelength_nm * 1e-3;
     let dof = ctx.depth_of_focus_um();
+    let a_um = ctx.core_radius_um;
     let defocus_range = spec.defocus_range_um.unwrap_or(4.0 * dof);
-    let compact = {
-        let basis = sampler(grid, &super::objective::geometry(start));
-        Compact::new(
-            fields.view(),
-            grid,
-            basis.view(),
-            start,
-            &Extent {
-                wavelength_nm: ctx.wavelength_nm,
-                core_radius_um: ctx.core_radius_um,
-                na: ctx.na,
-                defocus_range_um: defocus_range,
-            },
-        )
+    let fine = FineFields::new(fields.view(), grid);
+    let bext = {
+        let b = sampler(grid, &super::objective::geometry(start));
+        BasisExtent::new(b.view(), grid, start.center_um)
     };
-    let cgrid = compact.grid;
-    let n_modes = sampler(&cgrid, &super::objective::geometry(start)).dim().0;
-    let mut red = Reduced::new(
-        compact.fields.view(),
-        &cgrid,
-        ctx.wavelength_nm,
-        n_modes + spec.rank_extra,
-    );
-    red.total = compact.total_power();
-    let obj = Objective::new(&red, &sampler);
-    let eta = |a: &Alignment| {
-        let v = obj.captured(a);
-        progress(obj.evaluations.load(std::sync::atomic::Ordering::Relaxed));
-        v
+    let rank = {
+        let g = Grid::centred(2, 2, grid.pitch_um);
+        sampler(&g, &super::objective::geometry(start)).dim().0 + spec.rank_extra
     };
-    let exact = |a: &Alignment| {
-        let modes = obj.corrected_modes(a);
-        let num = overlap_power_per_frame(compact.fields.view(), &cgrid, &modes);
-        let per: Vec<(f64, f64)> = num
-            .iter()
-            .zip(&compact.frame_power)
-            .map(|(&c, &p)| (if p > 0.0 { c / p } else { 0.0 }, p))
-            .collect();
-        captured_total(&per)
+    // Fields on a compact grid, reduced to principal components; the denominator stays the
+    // decoding grid's power.
+    let build = |ext: &Extent| {
+        let c = Compact::new(&fine, &bext, ext);
+        let mut r = Reduced::new(c.fields.view(), &c.grid, ctx.wavelength_nm, rank);
+        r.total = c.total_power();
+        (c, r)
     };
-    let captured_before = exact(start);
+    let used = std::sync::atomic::AtomicUsize::new(0);
+    let count = || progress(used.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1);
 
     // Scaled units: one unit changes the objective by a comparable amount.
-    let a_um = ctx.core_radius_um;
     let unit = |p: P| match p {
         P::Cx | P::Cy => 0.05 * a_um,
         P::Rot => 2.0,
@@ -247,94 +231,106 @@ where
         P::Dz => 0.2 * dof,
     };
 
-    // 1. Starting candidates.
+    // Stages 1 and 2 on a loose grid that holds the start and the whole defocus scan.
     let mut best = *start;
-    let mut best_eta = eta(&best);
-    let c0 = if spec.center {
-        compact.centroid_um
-    } else {
-        None
-    };
-    let t0 = if spec.tilt {
-        compact.tilt_start_mrad
-    } else {
-        None
-    };
-    let mut cands = Vec::new();
-    if let Some(c) = c0 {
-        cands.push(Alignment {
-            center_um: c,
-            ..*start
+    let rotation_fitted;
+    {
+        let (_, red) = build(&Extent {
+            wavelength_nm: ctx.wavelength_nm,
+            center_um: None,
+            around: vec![*start],
+            center_margin_um: 0.3 * a_um,
+            defocus_margin_um: defocus_range,
+            tail: SEARCH_TAIL,
         });
-    }
-    if let Some(t) = t0 {
-        cands.push(Alignment {
-            tilt_mrad: t,
-            ..*start
-        });
+        let obj = Objective::new(&red, &sampler);
+        let eta = |a: &Alignment| {
+            count();
+            obj.captured(a)
+        };
+        // 1. Starting candidates.
+        let mut best_eta = eta(&best);
+        let c0 = if spec.center { fine.centroid_um } else { None };
+        let t0 = if spec.tilt {
+            fine.tilt_start_mrad(ctx.wavelength_nm)
+        } else {
+            None
+        };
+        let mut cands = Vec::new();
         if let Some(c) = c0 {
             cands.push(Alignment {
                 center_um: c,
-                tilt_mrad: t,
                 ..*start
             });
         }
-    }
-    for c in cands {
-        let v = eta(&c);
-        if v > best_eta {
-            best = c;
-            best_eta = v;
+        if let Some(t) = t0 {
+            cands.push(Alignment {
+                tilt_mrad: t,
+                ..*start
+            });
+            if let Some(c) = c0 {
+                cands.push(Alignment {
+                    center_um: c,
+                    tilt_mrad: t,
+                    ..*start
+                });
+            }
         }
-    }
+        for c in cands {
+            let v = eta(&c);
+            if v > best_eta {
+                best = c;
+                best_eta = v;
+            }
+        }
 
-    // 2. Coarse scans with refinement.
-    if spec.defocus {
-        let d = defocus_range;
-        let base = best;
-        let f = |z: f64| {
-            -eta(&Alignment {
-                defocus_um: z,
-                ..base
-            })
+        // 2. Coarse scans with refinement.
+        if spec.defocus {
+            let d = defocus_range;
+            let base = best;
+            let f = |z: f64| {
+                -eta(&Alignment {
+                    defocus_um: z,
+                    ..base
+                })
+            };
+            let n = 17;
+            let (z, _) = scan(f, base.defocus_um - d, base.defocus_um + d, n);
+            let h = 2.0 * d / (n - 1) as f64;
+            let (z, v, _) = golden_section(f, z - h, z + h, 0.1 * unit(P::Dz));
+            if -v > best_eta {
+                best.defocus_um = z;
+                best_eta = -v;
+            }
+        }
+        if spec.scale {
+            let base = best;
+            let f = |s: f64| -eta(&Alignment { scale: s, ..base });
+            let (s, _) = scan(f, base.scale * 0.85, base.scale * 1.15, 7);
+            let (s, v, _) = golden_section(f, s - 0.05 * base.scale, s + 0.05 * base.scale, 5e-3);
+            if -v > best_eta {
+                best.scale = s;
+                best_eta = -v;
+            }
+        }
+
+        // Rotation only when it matters.
+        rotation_fitted = match spec.rotation {
+            Some(r) => r,
+            None => {
+                let e1 = eta(&Alignment {
+                    rotation_deg: best.rotation_deg + 5.0,
+                    ..best
+                });
+                let e2 = eta(&Alignment {
+                    rotation_deg: best.rotation_deg - 5.0,
+                    ..best
+                });
+                (e1 - best_eta).abs().max((e2 - best_eta).abs()) > 1e-7 * best_eta.abs().max(1e-12)
+            }
         };
-        let n = 17;
-        let (z, _) = scan(f, base.defocus_um - d, base.defocus_um + d, n);
-        let h = 2.0 * d / (n - 1) as f64;
-        let (z, v, _) = golden_section(f, z - h, z + h, 0.02 * unit(P::Dz));
-        if -v > best_eta {
-            best.defocus_um = z;
-            best_eta = -v;
-        }
-    }
-    if spec.scale {
-        let base = best;
-        let f = |s: f64| -eta(&Alignment { scale: s, ..base });
-        let (s, _) = scan(f, base.scale * 0.85, base.scale * 1.15, 7);
-        let (s, v, _) = golden_section(f, s - 0.05 * base.scale, s + 0.05 * base.scale, 1e-3);
-        if -v > best_eta {
-            best.scale = s;
-            best_eta = -v;
-        }
     }
 
-    // Rotation only when it matters.
-    let rotation_fitted = match spec.rotation {
-        Some(r) => r,
-        None => {
-            let e1 = eta(&Alignment {
-                rotation_deg: best.rotation_deg + 5.0,
-                ..best
-            });
-            let e2 = eta(&Alignment {
-                rotation_deg: best.rotation_deg - 5.0,
-                ..best
-            });
-            (e1 - best_eta).abs().max((e2 - best_eta).abs()) > 1e-7 * best_eta.abs().max(1e-12)
-        }
-    };
-
-    // 3. Simplex on every free parameter.
     let mut free = Vec::new();
     if spec.center {
         free.extend([P::Cx, P::Cy]);
@@ -351,134 +347,173 @@ where
     if spec.defocus {
         free.push(P::Dz);
     }
-    // Bounds: the modes stay on the compact grid and inside its band (see
-    // [`super::compact`]), scale in [0.5, 2], defocus within 20 depths of focus of the start.
-    let cb = compact.center_bounds_um;
-    let tmax = compact.tilt_max_mrad;
-    let bound = |p: P| -> (f64, f64) {
-        match p {
-            P::Cx => (cb[0][0], cb[0][1]),
-            P::Cy => (cb[1][0], cb[1][1]),
-            P::Rot => (f64::NEG_INFINITY, f64::INFINITY),
-            P::Scale => (0.5, 2.0),
-            P::Tx | P::Ty => (-tmax, tmax),
-            P::Dz => (start.defocus_um - 20.0 * dof, start.defocus_um + 20.0 * dof),
-        }
-    };
-    let to_alignment = |x: &[f64]| {
-        let mut a = best;
-        for (p, v) in free.iter().zip(x) {
-            set(&mut a, *p, v * unit(*p));
-        }
-        a
-    };
-    let x0: Vec<f64> = free.iter().map(|&p| get(&best, p) / unit(p)).collect();
-    let bounds = Bounds {
-        lo: free.iter().map(|&p| bound(p).0 / unit(p)).collect(),
-        hi: free.iter().map(|&p| bound(p).1 / unit(p)).collect(),
-    };
-    let m = nelder_mead(
-        |x| -eta(&to_alignment(x)),
-        &x0,
-        &vec![1.0; free.len()],
-        &bounds,
-        &spec.nm,
-    );
-    let mut message = String::new();
-    if !m.converged {
-        message = format!(
-            "the simplex search did not settle within {} evaluations",
-            spec.nm.max_evals
-        );
-    }
-
-    // 4. Newton polish of the residual power S = total (1 - eta) from its finite-difference
-    // gradient and Hessian: the simplex stops loosely, the quadratic model finishes, and the
-    // same curvature gives the uncertainty.
-    let s = |x: &[f64]| red.total * (1.0 - eta(&to_alignment(x)));
     let n = free.len();
-    let h: Vec<f64> = vec![0.02; n];
-    let mut x_fit = m.x.clone();
-    let mut s_fit = red.total * (1.0 + m.f);
-    let mut curvature: Option<nalgebra::DMatrix<f64>> = None;
-    if m.converged && n > 0 {
-        let (s0, g, hs) = gradient_hessian(s, &x_fit, &h);
-        s_fit = s0;
-        let hm = nalgebra::DMatrix::from_fn(n, n, |i, j| hs[i][j]);
-        if let Some(ch) = hm.clone().cholesky() {
-            let mut g = nalgebra::DVector::from_vec(g);
-            for _ in 0..2 {
-                let step = -ch.solve(&g);
-                let len = step.amax();
-                let shrink = if len > 0.5 { 0.5 / len } else { 1.0 };
-                let x1: Vec<f64> = (0..n)
-                    .map(|i| (x_fit[i] + shrink * step[i]).clamp(bounds.lo[i], bounds.hi[i]))
-                    .collect();
-                let s1 = s(&x1);
-                if s1.is_nan() || s1 >= s_fit {
-                    break;
-                }
-                x_fit = x1;
-                s_fit = s1;
-                if len * shrink < 0.01 {
-                    break;
-                }
-                g = nalgebra::DVector::from_vec(gradient(s, &x_fit, &h));
+
+    // Stages 3 and 4 on a tight grid around the best candidate; rebuilt once around the
+    // result when the search left the part of the grid that holds the modes.
+    let mut round = 0;
+    loop {
+        let (compact, red) = build(&Extent {
+            wavelength_nm: ctx.wavelength_nm,
+            center_um: Some(best.center_um),
+            around: vec![best, *start],
+            center_margin_um: 0.1 * a_um,
+            defocus_margin_um: dof,
+            tail: FIT_TAIL,
+        });
+        let cgrid = compact.grid;
+        let obj = Objective::new(&red, &sampler);
+        let eta = |a: &Alignment| {
+            count();
+            obj.captured(a)
+        };
+        let exact = |a: &Alignment| {
+            let modes = obj.corrected_modes(a);
+            let num = overlap_power_per_frame(compact.fields.view(), &cgrid, &modes);
+            let per: Vec<(f64, f64)> = num
+                .iter()
+                .zip(&compact.frame_power)
+                .map(|(&c, &p)| (if p > 0.0 { c / p } else { 0.0 }, p))
+                .collect();
+            captured_total(&per)
+        };
+
+        // 3. Simplex on every free parameter. Bounds: the modes stay on the compact grid
+        // and inside its band (see [`super::compact`]), scale in [0.5, 2], defocus within
+        // 20 depths of focus of the start.
+        let cb = compact.center_bounds_um;
+        let tmax = compact.tilt_max_mrad;
+        let bound = |p: P| -> (f64, f64) {
+            match p {
+                P::Cx => (cb[0][0], cb[0][1]),
+                P::Cy => (cb[1][0], cb[1][1]),
+                P::Rot => (f64::NEG_INFINITY, f64::INFINITY),
+                P::Scale => (0.5, 2.0),
+                P::Tx | P::Ty => (-tmax, tmax),
+                P::Dz => (start.defocus_um - 20.0 * dof, start.defocus_um + 20.0 * dof),
             }
-            curvature = Some(hm);
-        }
-    }
-    let attempted = to_alignment(&x_fit);
-    for (i, p) in free.iter().enumerate() {
-        let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
-        if (x_fit[i] - lo).abs() < 1e-9 || (x_fit[i] - hi).abs() < 1e-9 {
+        };
+        let base = best;
+        let to_alignment = |x: &[f64]| {
+            let mut a = base;
+            for (p, v) in free.iter().zip(x) {
+                set(&mut a, *p, v * unit(*p));
+            }
+            a
+        };
+        let x0: Vec<f64> = free.iter().map(|&p| get(&best, p) / unit(p)).collect();
+        let bounds = Bounds {
+            lo: free.iter().map(|&p| bound(p).0 / unit(p)).collect(),
+            hi: free.iter().map(|&p| bound(p).1 / unit(p)).collect(),
+        };
+        let m = nelder_mead(
+            |x| -eta(&to_alignment(x)),
+            &x0,
+            &vec![1.0; n],
+            &bounds,
+            &spec.nm,
+        );
+        let mut message = String::new();
+        if !m.converged {
             message = format!(
-                "{} ran into its bound {} (the pattern may be off the grid, or the start is far off)",
-                name(*p),
-                x_fit[i] * unit(*p)
+                "the simplex search did not settle within {} evaluations",
+                spec.nm.max_evals
             );
         }
-    }
-    let converged = message.is_empty();
-    let captured_after = if converged {
-        exact(&attempted)
-    } else {
-        captured_before
-    };
 
-    // Uncertainty from the curvature of the residual power.
-    let mut uncertainty = Uncertainty::default();
-    if let (true, Some(hm)) = (converged, curvature) {
-        let n_real = 2.0 * (compact.fine_pixels * red.frames) as f64;
-        let sigma2 = s_fit.max(0.0) / (n_real - n as f64).max(1.0);
-        if let Some(inv) = hm.cholesky().map(|c| c.inverse()) {
-            let sd = |i: usize| (2.0 * sigma2 * inv[(i, i)]).sqrt() * unit(free[i]);
-            let idx = |p: P| free.iter().position(|&q| q == p);
-            let pair = |a: P, b: P| match (idx(a), idx(b)) {
-                (Some(i), Some(j)) => Some([sd(i), sd(j)]),
-                _ => None,
-            };
-            uncertainty = Uncertainty {
-                center_um: pair(P::Cx, P::Cy),
-                rotation_deg: idx(P::Rot).map(sd),
-                scale: idx(P::Scale).map(sd),
-                tilt_mrad: pair(P::Tx, P::Ty),
-                defocus_um: idx(P::Dz).map(sd),
-            };
+        // 4. Newton polish of the residual power S = total (1 - eta) from its
+        // finite-difference gradient and Hessian: the simplex stops loosely, the quadratic
+        // model finishes, and the same curvature gives the uncertainty.
+        let s = |x: &[f64]| red.total * (1.0 - eta(&to_alignment(x)));
+        let h: Vec<f64> = vec![0.02; n];
+        let mut x_fit = m.x.clone();
+        let mut s_fit = red.total * (1.0 + m.f);
+        let mut curvature: Option<nalgebra::DMatrix<f64>> = None;
+        if m.converged && n > 0 {
+            let (s0, g, hs) = gradient_hessian(s, &x_fit, &h);
+            s_fit = s0;
+            let hm = nalgebra::DMatrix::from_fn(n, n, |i, j| hs[i][j]);
+            if let Some(ch) = hm.clone().cholesky() {
+                let mut g = nalgebra::DVector::from_vec(g);
+                for _ in 0..2 {
+                    let step = -ch.solve(&g);
+                    let len = step.amax();
+                    let shrink = if len > 0.5 { 0.5 / len } else { 1.0 };
+                    let x1: Vec<f64> = (0..n)
+                        .map(|i| (x_fit[i] + shrink * step[i]).clamp(bounds.lo[i], bounds.hi[i]))
+                        .collect();
+                    let s1 = s(&x1);
+                    if s1.is_nan() || s1 >= s_fit {
+                        break;
+                    }
+                    x_fit = x1;
+                    s_fit = s1;
+                    if len * shrink < 0.01 {
+                        break;
+                    }
+                    g = nalgebra::DVector::from_vec(gradient(s, &x_fit, &h));
+                }
+                curvature = Some(hm);
+            }
         }
-    }
-    ChannelFit {
-        start: *start,
-        fitted: if converged { attempted } else { *start },
-        attempted,
-        captured_before,
-        captured_after,
-        uncertainty,
-        iterations: obj.evaluations.load(std::sync::atomic::Ordering::Relaxed),
-        converged,
-        rotation_fitted,
-        message,
-        retained_fraction: red.retained_fraction,
+        let attempted = to_alignment(&x_fit);
+        if round == 0 && m.converged && !compact.holds(&attempted) {
+            best = attempted;
+            round += 1;
+            continue;
+        }
+        for (i, p) in free.iter().enumerate() {
+            let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
+            if (x_fit[i] - lo).abs() < 1e-9 || (x_fit[i] - hi).abs() < 1e-9 {
+                message = format!(
+                    "{} ran into its bound {} (the pattern may be off the grid, or the start is far off)",
+                    name(*p),
+                    x_fit[i] * unit(*p)
+                );
+            }
+        }
+        let converged = message.is_empty();
+        let captured_before = exact(start);
+        let captured_after = if converged {
+            exact(&attempted)
+        } else {
+            captured_before
+        };
+
+        // Uncertainty from the curvature of the residual power.
+        let mut uncertainty = Uncertainty::default();
+        if let (true, Some(hm)) = (converged, curvature) {
+            let n_real = 2.0 * (compact.fine_pixels * red.frames) as f64;
+            let sigma2 = s_fit.max(0.0) / (n_real - n as f64).max(1.0);
+            if let Some(inv) = hm.cholesky().map(|c| c.inverse()) {
+                let sd = |i: usize| (2.0 * sigma2 * inv[(i, i)]).sqrt() * unit(free[i]);
+                let idx = |p: P| free.iter().position(|&q| q == p);
+                let pair = |a: P, b: P| match (idx(a), idx(b)) {
+                    (Some(i), Some(j)) => Some([sd(i), sd(j)]),
+                    _ => None,
+                };
+                uncertainty = Uncertainty {
+                    center_um: pair(P::Cx, P::Cy),
+                    rotation_deg: idx(P::Rot).map(sd),
+                    scale: idx(P::Scale).map(sd),
+                    tilt_mrad: pair(P::Tx, P::Ty),
+                    defocus_um: idx(P::Dz).map(sd),
+                };
+            }
+        }
+        return ChannelFit {
+            start: *start,
+            fitted: if converged { attempted } else { *start },
+            attempted,
+            captured_before,
+            captured_after,
+            uncertainty,
+            iterations: used.load(std::sync::atomic::Ordering::Relaxed),
+            converged,
+            rotation_fitted,
+            message,
+            retained_fraction: red.retained_fraction,
+        };
     }
 }
 
