@@ -9,6 +9,7 @@
 //! - watch: decode one 1024^2 frame (baseline), plus its live figures, and the figures alone.
 use criterion::{Criterion, Throughput};
 use modegram::align::analytic::SplitMix;
+use modegram::align::compact::{Compact, Extent};
 use modegram::align::fit::{fit_channel, FitContext, FitSpec};
 use modegram::align::live::LiveChannel;
 use modegram::align::objective::{apply_tilt, geometry, Objective, Propagator, Reduced};
@@ -159,7 +160,24 @@ fn main() {
         .warm_up_time(Duration::from_millis(500))
         .measurement_time(Duration::from_secs(3))
         .configure_from_args();
-    let red = Reduced::new(f.view(), &grid, 1064.0, basis.len() + 10);
+    let compact = Compact::new(
+        f.view(),
+        &grid,
+        basis.sample(&grid, &Alignment::default()).view(),
+        &Alignment::default(),
+        &Extent {
+            wavelength_nm: 1064.0,
+            core_radius_um: 25.0,
+            na: 0.2,
+            defocus_range_um: 4.0 * 1.064 / 0.04,
+        },
+    );
+    let cg = compact.grid;
+    println!(
+        "compact grid: {} x {} at {:.3} um (decoding grid 128 x 128 at 0.8 um)",
+        cg.nx, cg.ny, cg.pitch_um
+    );
+    let red = Reduced::new(compact.fields.view(), &cg, 1064.0, basis.len() + 10);
     let obj = Objective::new(&red, sampler);
     let mut g = c.benchmark_group("calibrate");
     let mut k = 0.0;
@@ -174,8 +192,37 @@ fn main() {
             })
         })
     });
+    g.bench_function("objective, tilt and defocus only", |b| {
+        b.iter(|| {
+            k += 1e-3;
+            obj.captured(&Alignment {
+                defocus_um: 5.0 + k,
+                tilt_mrad: [1.0, 0.0],
+                ..Default::default()
+            })
+        })
+    });
+    g.bench_function("sample basis on the compact grid", |b| {
+        b.iter(|| basis.sample(&cg, &Alignment::default()))
+    });
+    g.bench_function("compact 220 fields", |b| {
+        b.iter(|| {
+            Compact::new(
+                f.view(),
+                &grid,
+                basis.sample(&grid, &Alignment::default()).view(),
+                &Alignment::default(),
+                &Extent {
+                    wavelength_nm: 1064.0,
+                    core_radius_um: 25.0,
+                    na: 0.2,
+                    defocus_range_um: 4.0 * 1.064 / 0.04,
+                },
+            )
+        })
+    });
     g.bench_function("reduce 220 frames to principal components", |b| {
-        b.iter(|| Reduced::new(f.view(), &grid, 1064.0, basis.len() + 10))
+        b.iter(|| Reduced::new(compact.fields.view(), &cg, 1064.0, basis.len() + 10))
     });
     g.finish();
 

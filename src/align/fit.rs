@@ -8,13 +8,18 @@
 //! `fitted = start` (the caller decides what to do; the CLI exits 1).
 //!
 //! Strategy (robust first, then precise):
+//! 0. The fields are resampled once onto the compact grid of [`super::compact`] (coarsest
+//!    pitch and smallest extent that still hold every mode over the search), and reduced to
+//!    their principal components there; the captured fraction keeps the decoding grid's
+//!    frame powers as its denominator.
 //! 1. Starting candidates: the given alignment; the centre from the intensity centroid of
 //!    the summed frames; the tilt from the centroid of the summed spatial power spectrum
 //!    (a tilt t shifts the spectrum by t / lambda, docs/conventions.md). The best is kept.
 //! 2. Coarse scans with golden-section refinement of defocus (the basis is sampled once, so
 //!    these cost one inverse FFT per mode) and of scale.
-//! 3. Nelder-Mead on all free parameters in scaled units (see [`optimise`]), with one
-//!    restart.
+//! 3. Nelder-Mead on all free parameters in scaled units (see [`optimise`]), stopped loosely.
+//! 4. Newton steps on the residual power from its finite-difference gradient and Hessian,
+//!    accepted only when they lower it; the same Hessian gives the uncertainty.
 //!
 //! Rotation is fitted only when the objective depends on it: a basis made of complete
 //! degenerate sets (every LP group with both cos and sin, every HG/LG group whole) captures
@@ -26,10 +31,13 @@
 //! Cov = 2 sigma^2 H^-1, H the finite-difference Hessian of S (Press et al., Numerical
 //! Recipes, 3rd ed., section 15.5). The reported figure is sqrt(diag Cov), one standard
 //! deviation; it ignores model error (light outside the basis counts as noise).
-use super::objective::{captured_per_frame, captured_total, freq, Objective, Reduced};
-use super::optimise::{golden_section, hessian, nelder_mead, scan, Bounds, NmOptions};
+use super::compact::{Compact, Extent};
+use super::objective::{captured_total, overlap_power_per_frame, Objective, Reduced};
+use super::optimise::{
+    golden_section, gradient, gradient_hessian, nelder_mead, scan, Bounds, NmOptions,
+};
 use crate::grid::{Alignment, Grid};
-use ndarray::{Array3, ArrayView3, Axis};
+use ndarray::{Array3, ArrayView3};
 use num_complex::Complex64;
 use serde::Serialize;
 
@@ -60,10 +68,10 @@ impl Default for FitSpec {
             rank_extra: 10,
             defocus_range_um: None,
             nm: NmOptions {
-                ftol: 1e-8,
-                xtol: 1e-2,
+                ftol: 1e-6,
+                xtol: 0.05,
                 max_evals: 1500,
-                restarts: 1,
+                restarts: 0,
             },
         }
     }
@@ -170,34 +178,6 @@ pub fn centroid_um(power: &[f64], grid: &Grid, frac: f64) -> Option<[f64; 2]> {
     (s > 0.0).then(|| [sx / s, sy / s])
 }
 
-/// Tilt (mrad) from the centroid of the spatial power spectrum summed over the components.
-fn spectral_tilt_mrad(red: &Reduced, prop: &super::objective::Propagator) -> Option<[f64; 2]> {
-    let g = &red.grid;
-    let mut acc = vec![0.0; g.len()];
-    let mut scratch = vec![Complex64::new(0.0, 0.0); prop.fft.scratch_len()];
-    for row in red.q.axis_iter(Axis(0)) {
-        let mut d: Vec<Complex64> = row.iter().copied().collect();
-        prop.fft.forward(&mut d, &mut scratch);
-        for (a, z) in acc.iter_mut().zip(&d) {
-            *a += z.norm_sqr();
-        }
-    }
-    let peak = acc.iter().cloned().fold(0.0, f64::max);
-    if peak.is_nan() || peak <= 0.0 {
-        return None;
-    }
-    let (mut s, mut fx, mut fy) = (0.0, 0.0, 0.0);
-    for (i, &p) in acc.iter().enumerate() {
-        if p > 0.01 * peak {
-            s += p;
-            fx += p * freq(i % g.nx, g.nx, g.pitch_um);
-            fy += p * freq(i / g.nx, g.ny, g.pitch_um);
-        }
-    }
-    let wl_um = red.wavelength_nm * 1e-3;
-    Some([1e3 * wl_um * fx / s, 1e3 * wl_um * fy / s])
-}
-
 /// Fit the alignment of one channel. `progress` is called with the evaluations used so far.
 pub fn fit_channel<S>(
     fields: ArrayView3<Complex64>,
@@ -212,13 +192,33 @@ where
     S: Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync,
 {
     let fields = fields.as_standard_layout();
-    let n_modes = sampler(grid, &super::objective::geometry(start)).dim().0;
-    let red = Reduced::new(
-        fields.view(),
-        grid,
+    let wl_um = ctx.wavelength_nm * 1e-3;
+    let dof = ctx.depth_of_focus_um();
+    let defocus_range = spec.defocus_range_um.unwrap_or(4.0 * dof);
+    let compact = {
+        let basis = sampler(grid, &super::objective::geometry(start));
+        Compact::new(
+            fields.view(),
+            grid,
+            basis.view(),
+            start,
+            &Extent {
+                wavelength_nm: ctx.wavelength_nm,
+                core_radius_um: ctx.core_radius_um,
+                na: ctx.na,
+                defocus_range_um: defocus_range,
+            },
+        )
+    };
+    let cgrid = compact.grid;
+    let n_modes = sampler(&cgrid, &super::objective::geometry(start)).dim().0;
+    let mut red = Reduced::new(
+        compact.fields.view(),
+        &cgrid,
         ctx.wavelength_nm,
         n_modes + spec.rank_extra,
     );
+    red.total = compact.total_power();
     let obj = Objective::new(&red, &sampler);
     let eta = |a: &Alignment| {
         let v = obj.captured(a);
@@ -227,14 +227,18 @@ where
     };
     let exact = |a: &Alignment| {
         let modes = obj.corrected_modes(a);
-        captured_total(&captured_per_frame(fields.view(), grid, &modes))
+        let num = overlap_power_per_frame(compact.fields.view(), &cgrid, &modes);
+        let per: Vec<(f64, f64)> = num
+            .iter()
+            .zip(&compact.frame_power)
+            .map(|(&c, &p)| (if p > 0.0 { c / p } else { 0.0 }, p))
+            .collect();
+        captured_total(&per)
     };
     let captured_before = exact(start);
 
     // Scaled units: one unit changes the objective by a comparable amount.
     let a_um = ctx.core_radius_um;
-    let wl_um = ctx.wavelength_nm * 1e-3;
-    let dof = ctx.depth_of_focus_um();
     let unit = |p: P| match p {
         P::Cx | P::Cy => 0.05 * a_um,
         P::Rot => 2.0,
@@ -246,22 +250,13 @@ where
     // 1. Starting candidates.
     let mut best = *start;
     let mut best_eta = eta(&best);
-    let power: Vec<f64> = {
-        let mut p = vec![0.0; grid.len()];
-        for row in red.q.axis_iter(Axis(0)) {
-            for (a, z) in p.iter_mut().zip(row.iter()) {
-                *a += z.norm_sqr();
-            }
-        }
-        p
-    };
     let c0 = if spec.center {
-        centroid_um(&power, grid, 0.05)
+        compact.centroid_um
     } else {
         None
     };
     let t0 = if spec.tilt {
-        spectral_tilt_mrad(&red, obj.propagator())
+        compact.tilt_start_mrad
     } else {
         None
     };
@@ -295,7 +290,7 @@ where
 
     // 2. Coarse scans with refinement.
     if spec.defocus {
-        let d = spec.defocus_range_um.unwrap_or(4.0 * dof);
+        let d = defocus_range;
         let base = best;
         let f = |z: f64| {
             -eta(&Alignment {
@@ -356,15 +351,14 @@ where
     if spec.defocus {
         free.push(P::Dz);
     }
-    // Bounds: the axis stays on the grid, scale in [0.5, 2], tilt below the grid's Nyquist
-    // angle, defocus within 20 depths of focus of the start.
-    let half_x = grid.nx as f64 * grid.pitch_um / 2.0;
-    let half_y = grid.ny as f64 * grid.pitch_um / 2.0;
-    let tmax = 1e3 * wl_um / (2.0 * grid.pitch_um);
+    // Bounds: the modes stay on the compact grid and inside its band (see
+    // [`super::compact`]), scale in [0.5, 2], defocus within 20 depths of focus of the start.
+    let cb = compact.center_bounds_um;
+    let tmax = compact.tilt_max_mrad;
     let bound = |p: P| -> (f64, f64) {
         match p {
-            P::Cx => (-half_x, half_x),
-            P::Cy => (-half_y, half_y),
+            P::Cx => (cb[0][0], cb[0][1]),
+            P::Cy => (cb[1][0], cb[1][1]),
             P::Rot => (f64::NEG_INFINITY, f64::INFINITY),
             P::Scale => (0.5, 2.0),
             P::Tx | P::Ty => (-tmax, tmax),
@@ -390,7 +384,6 @@ where
         &bounds,
         &spec.nm,
     );
-    let attempted = to_alignment(&m.x);
     let mut message = String::new();
     if !m.converged {
         message = format!(
@@ -398,13 +391,51 @@ where
             spec.nm.max_evals
         );
     }
+
+    // 4. Newton polish of the residual power S = total (1 - eta) from its finite-difference
+    // gradient and Hessian: the simplex stops loosely, the quadratic model finishes, and the
+    // same curvature gives the uncertainty.
+    let s = |x: &[f64]| red.total * (1.0 - eta(&to_alignment(x)));
+    let n = free.len();
+    let h: Vec<f64> = vec![0.02; n];
+    let mut x_fit = m.x.clone();
+    let mut s_fit = red.total * (1.0 + m.f);
+    let mut curvature: Option<nalgebra::DMatrix<f64>> = None;
+    if m.converged && n > 0 {
+        let (s0, g, hs) = gradient_hessian(s, &x_fit, &h);
+        s_fit = s0;
+        let hm = nalgebra::DMatrix::from_fn(n, n, |i, j| hs[i][j]);
+        if let Some(ch) = hm.clone().cholesky() {
+            let mut g = nalgebra::DVector::from_vec(g);
+            for _ in 0..2 {
+                let step = -ch.solve(&g);
+                let len = step.amax();
+                let shrink = if len > 0.5 { 0.5 / len } else { 1.0 };
+                let x1: Vec<f64> = (0..n)
+                    .map(|i| (x_fit[i] + shrink * step[i]).clamp(bounds.lo[i], bounds.hi[i]))
+                    .collect();
+                let s1 = s(&x1);
+                if s1.is_nan() || s1 >= s_fit {
+                    break;
+                }
+                x_fit = x1;
+                s_fit = s1;
+                if len * shrink < 0.01 {
+                    break;
+                }
+                g = nalgebra::DVector::from_vec(gradient(s, &x_fit, &h));
+            }
+            curvature = Some(hm);
+        }
+    }
+    let attempted = to_alignment(&x_fit);
     for (i, p) in free.iter().enumerate() {
         let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
-        if (m.x[i] - lo).abs() < 1e-9 || (m.x[i] - hi).abs() < 1e-9 {
+        if (x_fit[i] - lo).abs() < 1e-9 || (x_fit[i] - hi).abs() < 1e-9 {
             message = format!(
                 "{} ran into its bound {} (the pattern may be off the grid, or the start is far off)",
                 name(*p),
-                m.x[i] * unit(*p)
+                x_fit[i] * unit(*p)
             );
         }
     }
@@ -417,15 +448,10 @@ where
 
     // Uncertainty from the curvature of the residual power.
     let mut uncertainty = Uncertainty::default();
-    if converged && !free.is_empty() {
-        let h: Vec<f64> = vec![0.02; free.len()];
-        let s = |x: &[f64]| red.total * (1.0 - obj.captured(&to_alignment(x)));
-        let hs = hessian(s, &m.x, &h);
-        let n_real = 2.0 * (grid.len() * red.frames) as f64;
-        let s_min = red.total * (1.0 - m.f.abs().min(1.0));
-        let sigma2 = s_min.max(0.0) / (n_real - free.len() as f64).max(1.0);
-        let hm = nalgebra::DMatrix::from_fn(free.len(), free.len(), |i, j| hs[i][j]);
-        if let Some(inv) = hm.clone().cholesky().map(|c| c.inverse()) {
+    if let (true, Some(hm)) = (converged, curvature) {
+        let n_real = 2.0 * (compact.fine_pixels * red.frames) as f64;
+        let sigma2 = s_fit.max(0.0) / (n_real - n as f64).max(1.0);
+        if let Some(inv) = hm.cholesky().map(|c| c.inverse()) {
             let sd = |i: usize| (2.0 * sigma2 * inv[(i, i)]).sqrt() * unit(free[i]);
             let idx = |p: P| free.iter().position(|&q| q == p);
             let pair = |a: P, b: P| match (idx(a), idx(b)) {
@@ -472,6 +498,7 @@ fn name(p: P) -> &'static str {
 mod tests {
     use super::*;
     use crate::align::analytic::{hg_fields, hg_indices, hg_sampler, sample_hg};
+    use ndarray::Axis;
 
     fn ctx() -> FitContext {
         FitContext {

@@ -4,6 +4,7 @@
 //!
 //! - [`optimise`]: derivative-free minimisers (Nelder-Mead, golden section, scans, Hessian).
 //! - [`objective`]: captured power of the basis over the fields as a function of alignment.
+//! - [`compact`]: the fields resampled onto the smallest grid that holds the modes.
 //! - [`fit`]: the per-channel fit on decoded fields, with uncertainties.
 //! - [`calibrate`]: decode once, fit every channel, calibration.json and fitted.toml.
 //! - [`inspect`]: measure and grade every check item of a setup.
@@ -15,6 +16,7 @@
 pub mod analytic;
 pub mod calibrate;
 pub mod check;
+pub mod compact;
 pub mod fit;
 pub mod inspect;
 pub mod live;
