@@ -5,9 +5,14 @@
 //! seconds without a new frame, and prints a summary. Files are handled as described in
 //! crate::align::watch (a half-written file is waited for; one that never completes is
 //! reported). Frames of another size than the first are reported and skipped.
+//!
+//! Throughput: polls are at least `--poll-ms` apart, the decoding time counting towards the
+//! interval. The ready files are decoded in rounds of two per thread, spread over the rayon
+//! threads (a lone file: its channels in parallel), each thread with its own buffers; the
+//! figures are shown in the files' order and do not depend on the split.
 use super::{Common, Outcome};
 use crate::align::calibrate::context;
-use crate::align::live::{LiveChannel, LiveFigures};
+use crate::align::live::{LiveChannel, LiveFigures, LiveScratch};
 use crate::align::objective::geometry;
 use crate::align::watch::{Watcher, FRAME_EXTENSIONS};
 use crate::decode::{count_saturated, prepare, DecodeOptions, Prepared};
@@ -17,7 +22,9 @@ use crate::modes::Basis;
 use crate::setup::Setup;
 use clap::Args;
 use num_complex::Complex64;
+use rayon::prelude::*;
 use serde_json::json;
+use std::collections::VecDeque;
 use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -61,15 +68,29 @@ fn install_ctrlc() {
 #[cfg(not(unix))]
 fn install_ctrlc() {}
 
+/// Buffers of one worker: a frame and, per channel, the decode and live-figure scratch.
+struct Worker {
+    buf: Vec<f32>,
+    chans: Vec<ChannelScratch>,
+}
+
+struct ChannelScratch {
+    decode: crate::decode::Scratch,
+    field: Vec<Complex64>,
+    live: LiveScratch,
+}
+
+/// The decode plans and live-figure plans (read-only) plus one [`Worker`] per thread.
 struct Live {
     prepared: Prepared,
     channels: Vec<LiveChannel>,
-    scratch: Vec<crate::decode::Scratch>,
-    fields: Vec<Vec<Complex64>>,
-    buf: Vec<f32>,
+    workers: Vec<Worker>,
     width: usize,
     height: usize,
 }
+
+/// Figures per frame and channel of one file.
+type FileFigures = Result<Vec<Vec<LiveFigures>>>;
 
 impl Live {
     fn new(setup: &Setup, basis: &Basis, first: &Path) -> Result<Live> {
@@ -105,56 +126,111 @@ impl Live {
         }
         let stack = FrameStack::open(&[first.to_path_buf()])?;
         let (width, height) = (stack.width(), stack.height());
+        let workers = (0..rayon::current_num_threads().max(1))
+            .map(|_| Worker {
+                buf: vec![0f32; width * height],
+                chans: prepared
+                    .plans
+                    .iter()
+                    .zip(&channels)
+                    .map(|(p, l)| ChannelScratch {
+                        decode: p.scratch(),
+                        field: vec![Complex64::new(0.0, 0.0); p.len()],
+                        live: l.scratch(),
+                    })
+                    .collect(),
+            })
+            .collect();
         Ok(Live {
-            scratch: prepared.plans.iter().map(|p| p.scratch()).collect(),
-            fields: prepared
-                .plans
-                .iter()
-                .map(|p| vec![Complex64::new(0.0, 0.0); p.len()])
-                .collect(),
-            buf: vec![0f32; width * height],
             prepared,
             channels,
+            workers,
             width,
             height,
         })
     }
 
-    /// Decode every frame of `path`; figures per frame and channel.
-    fn process(&mut self, path: &Path) -> Result<Vec<Vec<LiveFigures>>> {
-        let mut stack = FrameStack::open(&[path.to_path_buf()])?.allow_blank();
-        if (stack.width(), stack.height()) != (self.width, self.height) {
-            return Err(Error::frame(
-                path,
-                Some(0),
-                format!(
-                    "frame is {}x{} pixels, the watched frames (and the setup's regions) are {}x{}",
-                    stack.width(),
-                    stack.height(),
-                    self.width,
-                    self.height
-                ),
-            ));
-        }
-        let mut out = Vec::new();
-        while stack.read_next(&mut self.buf)?.is_some() {
-            let mut figs = Vec::new();
-            for (c, plan) in self.prepared.plans.iter().enumerate() {
-                plan.decode(&self.buf, &mut self.scratch[c], &mut self.fields[c]);
-                let [_, _, w, h] = plan.spec.region;
-                let sat = match self.prepared.saturation_counts {
-                    Some(l) => {
-                        count_saturated(&self.buf, self.width, plan.spec.region, l) as f64
-                            / (w * h) as f64
-                    }
-                    None => 0.0,
-                };
-                figs.push(self.channels[c].measure(&self.fields[c], sat));
-            }
-            out.push(figs);
-        }
-        Ok(out)
+    /// Files decoded at once: two per worker, so that the view stays current.
+    fn batch_len(&self) -> usize {
+        2 * self.workers.len()
     }
+
+    /// Decode the files of `paths` (at most [`Live::batch_len`]), results in their order:
+    /// the files spread over the workers, or, for a single file, its channels over the
+    /// threads. The figures do not depend on the split (LiveChannel carries no state).
+    fn process_batch(&mut self, paths: &[PathBuf]) -> Vec<FileFigures> {
+        let (prepared, channels) = (&self.prepared, &self.channels);
+        let size = (self.width, self.height);
+        if paths.len() == 1 {
+            return vec![process(
+                prepared,
+                channels,
+                size,
+                &mut self.workers[0],
+                &paths[0],
+                true,
+            )];
+        }
+        let per = paths.len().div_ceil(self.workers.len());
+        let mut out: Vec<Vec<FileFigures>> = paths
+            .par_chunks(per)
+            .zip(self.workers.par_iter_mut())
+            .map(|(chunk, w)| {
+                chunk
+                    .iter()
+                    .map(|p| process(prepared, channels, size, w, p, false))
+                    .collect()
+            })
+            .collect();
+        out.drain(..).flatten().collect()
+    }
+}
+
+/// Decode every frame of `path` with the buffers of `w`; channels on several threads when
+/// `parallel`.
+fn process(
+    prepared: &Prepared,
+    channels: &[LiveChannel],
+    (width, height): (usize, usize),
+    w: &mut Worker,
+    path: &Path,
+    parallel: bool,
+) -> FileFigures {
+    let mut stack = FrameStack::open(&[path.to_path_buf()])?.allow_blank();
+    if (stack.width(), stack.height()) != (width, height) {
+        return Err(Error::frame(
+            path,
+            Some(0),
+            format!(
+                "frame is {}x{} pixels, the watched frames (and the setup's regions) are {width}x{height}",
+                stack.width(),
+                stack.height(),
+            ),
+        ));
+    }
+    let mut out = Vec::new();
+    while stack.read_next(&mut w.buf)?.is_some() {
+        let buf = &w.buf;
+        let one = |(c, s): (usize, &mut ChannelScratch)| {
+            let plan = &prepared.plans[c];
+            plan.decode(buf, &mut s.decode, &mut s.field);
+            let [_, _, rw, rh] = plan.spec.region;
+            let sat = match prepared.saturation_counts {
+                Some(l) => {
+                    count_saturated(buf, width, plan.spec.region, l) as f64 / (rw * rh) as f64
+                }
+                None => 0.0,
+            };
+            channels[c].measure_with(&s.field, sat, &mut s.live)
+        };
+        let figs: Vec<LiveFigures> = if parallel && w.chans.len() > 1 {
+            w.chans.par_iter_mut().enumerate().map(one).collect()
+        } else {
+            w.chans.iter_mut().enumerate().map(one).collect()
+        };
+        out.push(figs);
+    }
+    Ok(out)
 }
 
 fn line(names: &[String], figs: &[LiveFigures]) -> String {
@@ -212,22 +288,36 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
     let mut block_lines = 0usize;
     let stdout = std::io::stdout();
     let reason;
+    let interval = Duration::from_millis(args.poll_ms);
+    let mut last_poll: Option<Instant> = None;
     'outer: loop {
         if STOP.load(Ordering::SeqCst) {
             reason = "interrupted";
             break;
         }
+        // polls at least --poll-ms apart (the half-written-file test relies on it); the time
+        // spent decoding counts towards the interval
+        if let Some(t) = last_poll {
+            std::thread::sleep(interval.saturating_sub(t.elapsed()));
+        }
+        last_poll = Some(Instant::now());
         let (ready, gave_up) = watcher.poll()?;
         for g in gave_up {
             problems.push(format!("{}: {}", g.path.display(), g.reason));
             super::warn(args.common.quiet, problems.last().unwrap());
         }
-        for path in ready {
+        let mut queue: VecDeque<PathBuf> = ready.into();
+        while !queue.is_empty() {
+            if STOP.load(Ordering::SeqCst) {
+                continue 'outer;
+            }
             if live.is_none() {
+                let path = queue.front().expect("not empty").clone();
                 match Live::new(&setup, &basis, &path) {
                     Ok(l) => live = Some(l),
                     Err(e @ Error::Setup { .. }) => return Err(e),
                     Err(e) => {
+                        queue.pop_front();
                         if let Some(g) = watcher.retry(&path, &e.to_string()) {
                             problems.push(format!("{}: {}", g.path.display(), g.reason));
                             super::warn(args.common.quiet, problems.last().unwrap());
@@ -237,63 +327,71 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
                 }
             }
             let l = live.as_mut().expect("prepared above");
-            match l.process(&path) {
-                Ok(figs) => {
-                    watcher.done(&path);
-                    last_new = Instant::now();
-                    for f in figs {
-                        frames += 1;
-                        for (s, x) in sums.iter_mut().zip(&f) {
-                            s.0 += x.captured;
-                            s.1 = s.1.min(x.captured);
-                        }
+            let mut take = queue.len().min(l.batch_len());
+            if let Some(m) = args.max_frames {
+                take = take.min(m.saturating_sub(frames).max(1));
+            }
+            let batch: Vec<PathBuf> = queue.drain(..take).collect();
+            let results = l.process_batch(&batch);
+            for (path, result) in batch.iter().zip(results) {
+                match result {
+                    Ok(figs) => {
+                        watcher.done(path);
+                        last_new = Instant::now();
                         let name = path
                             .file_name()
                             .map(|n| n.to_string_lossy().to_string())
                             .unwrap_or_default();
-                        if tty {
-                            let mut err = std::io::stderr().lock();
-                            if block_lines > 0 {
-                                let _ = write!(err, "\x1b[{block_lines}A");
+                        for f in figs {
+                            frames += 1;
+                            for (s, x) in sums.iter_mut().zip(&f) {
+                                s.0 += x.captured;
+                                s.1 = s.1.min(x.captured);
                             }
-                            let _ = writeln!(
-                                err,
-                                "\x1b[2Kframe {frames} ({name}), {:.1} frames/s",
-                                frames as f64 / start.elapsed().as_secs_f64().max(1e-9)
-                            );
-                            for (n, x) in names.iter().zip(&f) {
+                            if tty {
+                                let mut err = std::io::stderr().lock();
+                                if block_lines > 0 {
+                                    let _ = write!(err, "\x1b[{block_lines}A");
+                                }
                                 let _ = writeln!(
                                     err,
-                                    "\x1b[2K  {}",
-                                    line(std::slice::from_ref(n), std::slice::from_ref(x))
+                                    "\x1b[2Kframe {frames} ({name}), {:.1} frames/s",
+                                    frames as f64 / start.elapsed().as_secs_f64().max(1e-9)
+                                );
+                                for (n, x) in names.iter().zip(&f) {
+                                    let _ = writeln!(
+                                        err,
+                                        "\x1b[2K  {}",
+                                        line(std::slice::from_ref(n), std::slice::from_ref(x))
+                                    );
+                                }
+                                block_lines = 1 + names.len();
+                            } else if !args.common.json {
+                                let _ = writeln!(
+                                    stdout.lock(),
+                                    "frame {frames} {name} | {}",
+                                    line(&names, &f)
                                 );
                             }
-                            block_lines = 1 + names.len();
-                        } else if !args.common.json {
-                            let _ = writeln!(
-                                stdout.lock(),
-                                "frame {frames} {name} | {}",
-                                line(&names, &f)
-                            );
-                        }
-                        last = Some(f);
-                        if args.max_frames.is_some_and(|m| frames >= m) {
-                            reason = "reached --max-frames";
-                            break 'outer;
+                            last = Some(f);
+                            if args.max_frames.is_some_and(|m| frames >= m) {
+                                reason = "reached --max-frames";
+                                break 'outer;
+                            }
                         }
                     }
-                }
-                Err(e @ Error::Frame { .. })
-                    if e.to_string().contains("pixels, the watched frames") =>
-                {
-                    watcher.done(&path);
-                    problems.push(e.to_string());
-                    super::warn(args.common.quiet, &e.to_string());
-                }
-                Err(e) => {
-                    if let Some(g) = watcher.retry(&path, &e.to_string()) {
-                        problems.push(format!("{}: {}", g.path.display(), g.reason));
-                        super::warn(args.common.quiet, problems.last().unwrap());
+                    Err(e @ Error::Frame { .. })
+                        if e.to_string().contains("pixels, the watched frames") =>
+                    {
+                        watcher.done(path);
+                        problems.push(e.to_string());
+                        super::warn(args.common.quiet, &e.to_string());
+                    }
+                    Err(e) => {
+                        if let Some(g) = watcher.retry(path, &e.to_string()) {
+                            problems.push(format!("{}: {}", g.path.display(), g.reason));
+                            super::warn(args.common.quiet, problems.last().unwrap());
+                        }
                     }
                 }
             }
@@ -304,7 +402,6 @@ pub fn run(args: &WatchArgs) -> Result<Outcome> {
                 break;
             }
         }
-        std::thread::sleep(Duration::from_millis(args.poll_ms));
     }
     let elapsed = start.elapsed().as_secs_f64();
     if frames == 0 {
