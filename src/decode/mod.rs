@@ -146,6 +146,8 @@ pub fn projectors(p: &Prepared, basis: Option<BasisSampler>) -> Result<Vec<Proje
 
 struct Batch {
     fields: Vec<Array2<Complex64>>,
+    /// Per channel the fields packed for its projector, `packed_len()` values per frame.
+    packed: Vec<Vec<f32>>,
     coeffs: Vec<Array2<Complex64>>,
     sat: Vec<usize>,
     power: Vec<f64>,
@@ -182,6 +184,10 @@ pub fn decode_prepared(
     let mut bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
     let mut b = Batch {
         fields: npix.iter().map(|&n| Array2::zeros((batch, n))).collect(),
+        packed: projectors
+            .iter()
+            .map(|q| vec![0f32; batch * q.packed_len()])
+            .collect(),
         coeffs: (0..nch).map(|_| Array2::zeros((batch, n_modes))).collect(),
         sat: vec![0; batch * nch],
         power: vec![0.0; batch * nch],
@@ -209,26 +215,27 @@ pub fn decode_prepared(
         if n == 0 {
             break;
         }
-        decode_batch(p, &bufs[..n], &mut b, &mut scratch, per, fw);
+        decode_batch(p, projectors, &bufs[..n], &mut b, &mut scratch, per, fw);
         if !projectors.is_empty() {
-            // One matrix product per (channel, slice of frames): channels in parallel, and
-            // their frames split further only when there are fewer channels than threads.
-            let slices = (threads / nch.max(1)).max(1);
-            let rows_per = n.div_ceil(slices).max(1);
-            let mut jobs = Vec::with_capacity(nch * threads);
-            for ((c, f), q) in b.coeffs.iter_mut().zip(&b.fields).zip(projectors) {
+            // One product per (channel, range of modes): the packed basis is streamed once
+            // per batch; channels in parallel, their modes split further only when there
+            // are fewer channels than threads.
+            let slices = (threads / nch.max(1)).max(1).min(n_modes.max(1));
+            let modes_per = n_modes.div_ceil(slices).max(1);
+            let mut jobs = Vec::with_capacity(nch * slices);
+            for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
                 let mut rest = c.slice_mut(s![..n, ..]);
                 let mut k = 0;
-                while k < n {
-                    let take = rows_per.min(n - k);
-                    let (head, tail) = rest.split_at(Axis(0), take);
-                    jobs.push((q, f.slice(s![k..k + take, ..]), head));
+                while k < n_modes {
+                    let take = modes_per.min(n_modes - k);
+                    let (head, tail) = rest.split_at(Axis(1), take);
+                    jobs.push((q, pk.as_slice(), k..k + take, head));
                     rest = tail;
                     k += take;
                 }
             }
             jobs.into_par_iter()
-                .for_each(|(q, fc, cc)| q.project_into(fc, cc));
+                .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
         }
         for i in 0..n {
             for (ch, coeffs) in b.coeffs.iter().enumerate() {
@@ -282,6 +289,7 @@ pub fn decode_prepared(
 /// with its own scratch (deterministic for any thread count).
 fn decode_batch(
     p: &Prepared,
+    projectors: &[Projector],
     bufs: &[Vec<f32>],
     b: &mut Batch,
     scratch: &mut [Vec<Scratch>],
@@ -300,20 +308,32 @@ fn decode_batch(
             field_chunks[c].push(part);
         }
     }
+    let mut packed_chunks: Vec<Vec<&mut [f32]>> = (0..scratch.len()).map(|_| Vec::new()).collect();
+    for (pk, q) in b.packed.iter_mut().zip(projectors) {
+        let len = q.packed_len();
+        for (c, part) in pk[..n * len].chunks_mut(per * len).enumerate() {
+            packed_chunks[c].push(part);
+        }
+    }
     let sat_chunks = b.sat[..n * nch].chunks_mut(per * nch);
     let pow_chunks = b.power[..n * nch].chunks_mut(per * nch);
     bufs.par_chunks(per)
         .zip(scratch.par_iter_mut())
         .zip(field_chunks.into_par_iter())
+        .zip(packed_chunks.into_par_iter())
         .zip(sat_chunks.collect::<Vec<_>>().into_par_iter())
         .zip(pow_chunks.collect::<Vec<_>>().into_par_iter())
-        .for_each(|((((frames, scr), mut outs), sat), pow)| {
+        .for_each(|(((((frames, scr), mut outs), mut packs), sat), pow)| {
             for (i, frame) in frames.iter().enumerate() {
                 for (ch, plan) in p.plans.iter().enumerate() {
                     let npx = plan.len();
                     let out = &mut outs[ch][i * npx..(i + 1) * npx];
                     plan.decode(frame, &mut scr[ch], out);
                     pow[i * nch + ch] = field_power(out, &plan.grid);
+                    if let (Some(q), Some(pk)) = (projectors.get(ch), packs.get_mut(ch)) {
+                        let len = q.packed_len();
+                        q.pack_field(out, &mut pk[i * len..(i + 1) * len]);
+                    }
                     sat[i * nch + ch] = match p.saturation_counts {
                         Some(level) => count_saturated(frame, fw, plan.spec.region, level),
                         None => 0,
