@@ -6,8 +6,8 @@
 //! power of a field is `sum_k |c_k|^2 / sum |E|^2 dA` (1 for a field inside the span of an
 //! orthonormal basis, by Parseval's identity for orthonormal expansions).
 //!
-//! How the product is evaluated (results agree with the f64 sums to f32 rounding,
-//! [`F32_RELATIVE_ERROR`]):
+//! How the product is evaluated (results agree with the f64 sums to
+//! [`PROJECTION_RELATIVE_ERROR`]):
 //! - Pixels: only the pixels where the basis lives. Pixels are dropped, weakest first, while
 //!   the dropped share of every mode's power stays below [`DROPPED_POWER`]: by the
 //!   Cauchy-Schwarz inequality a dropped set changes `|c_k|` by at most
@@ -31,13 +31,15 @@ pub const BLOCK_PX: usize = 512;
 /// Vector width of the kernel (f32 lanes).
 const LANES: usize = 8;
 /// Largest share of any mode's power on the pixels left out of the overlap.
-pub const DROPPED_POWER: f64 = 1e-14;
-/// Bound on `|c - c_exact| / (||psi|| ||E|| dA)` from the f32 evaluation, for grids up
-/// to a few million pixels: inputs rounded to f32 (2^-24 relative each) and at most
-/// BLOCK_PX / LANES = 64 f32 additions per partial sum, each adding at most 2^-24 relative
-/// to the running sum (Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed.,
-/// eq. 3.5 with gamma_n = n u), bounded by about 70 * 2^-24 = 4e-6, rounded up.
-pub const F32_RELATIVE_ERROR: f64 = 1e-5;
+pub const DROPPED_POWER: f64 = 1e-12;
+/// Bound on `|c - c_exact| / (||psi|| ||E|| dA)`: the f32 evaluation (inputs rounded to
+/// f32, 2^-24 relative each, then BLOCK_PX / LANES = 64 lane additions and 3 more in the
+/// sum of the lanes per partial sum, each adding at most 2^-24 relative to the running
+/// sum: Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed., eq. 3.5 with
+/// gamma_n = n u; about 70 * 2^-24 = 4.2e-6; the f64 sum of the partial sums adds
+/// nothing at this level for grids below ~1e9 pixels) plus the dropped pixels
+/// (sqrt(DROPPED_POWER) = 1e-6), rounded up.
+pub const PROJECTION_RELATIVE_ERROR: f64 = 1e-5;
 
 /// A basis prepared for projection on one grid.
 #[derive(Debug, Clone)]
@@ -173,28 +175,27 @@ impl Projector {
         if frames == 0 || modes.is_empty() {
             return;
         }
-        let (j0, j1) = if self.real {
-            (modes.start, modes.end)
+        let job = self.job(packed, frames, modes);
+        run(&job, &mut out);
+    }
+
+    /// The product for `frames` packed fields and `modes`.
+    fn job<'a>(&'a self, packed: &'a [f32], frames: usize, modes: Range<usize>) -> Job<'a> {
+        let (cols, nb) = if self.real {
+            (modes, self.n_modes)
         } else {
-            (2 * modes.start, 2 * modes.end)
+            (2 * modes.start..2 * modes.end, 2 * self.n_modes)
         };
-        let nb = if self.real {
-            self.n_modes
-        } else {
-            2 * self.n_modes
-        };
-        let job = Job {
+        Job {
             packed,
             stride: self.stride,
             basis: &self.packed,
             nb,
             k_pad: self.k_pad,
             rows: 2 * frames,
-            cols: j0..j1,
+            cols,
             real: self.real,
-            m0: modes.start,
-        };
-        run(&job, &mut out);
+        }
     }
 
     /// Coefficients of a batch: `fields` (batch, pixels) -> `out` (batch, modes).
@@ -274,136 +275,173 @@ struct Job<'a> {
     rows: usize,
     cols: Range<usize>,
     real: bool,
-    m0: usize,
 }
 
-/// Add the f64 block sums `d[r][j]` (field row r0 + r, basis row j0 + j) to the coefficients.
-#[inline(always)]
-fn store<const R: usize, const MB: usize>(
-    job: &Job,
-    r0: usize,
-    j0: usize,
-    d: &[[f32; LANES]],
-    out: &mut ArrayViewMut2<Complex64>,
-) {
-    for r in 0..R {
-        let (f, imag_e) = ((r0 + r) / 2, (r0 + r) % 2 == 1);
-        for j in 0..MB {
-            let s: f64 = d[r * MB + j].iter().map(|&v| v as f64).sum();
-            let jj = j0 + j;
-            let o = &mut out[(f, jj / if job.real { 1 } else { 2 } - job.m0)];
-            if job.real {
-                if imag_e {
-                    o.im += s;
-                } else {
-                    o.re += s;
-                }
-            } else {
-                // c = (Er + i Ei)(Br + i Bi): re = Er Br - Ei Bi, im = Er Bi + Ei Br
-                match (imag_e, jj % 2 == 1) {
-                    (false, false) => o.re += s,
-                    (true, true) => o.re -= s,
-                    _ => o.im += s,
-                }
-            }
+/// Sums of products over each block, added in f64 to `dots[(r, j - cols.start)]` (field
+/// row r, basis row j); then combined into the coefficients.
+fn run(job: &Job, out: &mut ArrayViewMut2<Complex64>) {
+    let nc = job.cols.len();
+    let mut dots = vec![0f64; job.rows * nc];
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+            // SAFETY: the CPU has the features the function is compiled for.
+            unsafe { avx2::blocks(job, &mut dots) };
+            combine(job, &dots, out);
+            return;
         }
+    }
+    blocks_portable(job, &mut dots);
+    combine(job, &dots, out);
+}
+
+/// Coefficients from the row-by-basis-row sums.
+fn combine(job: &Job, dots: &[f64], out: &mut ArrayViewMut2<Complex64>) {
+    let nc = job.cols.len();
+    for ((f, m), o) in out.indexed_iter_mut() {
+        let (re, im) = (&dots[2 * f * nc..][..nc], &dots[(2 * f + 1) * nc..][..nc]);
+        *o = if job.real {
+            Complex64::new(re[m], im[m])
+        } else {
+            // c = (Er + i Ei)(Br + i Bi): re = Er Br - Ei Bi, im = Er Bi + Ei Br
+            let (r, i) = (2 * m, 2 * m + 1);
+            Complex64::new(re[r] - im[i], re[i] + im[r])
+        };
     }
 }
 
-/// Sums of products over one block of `kc` pixels: R field rows x MB basis rows.
-#[inline(always)]
-fn tile<const R: usize, const MB: usize, const FMA: bool>(
-    a: [&[f32]; R],
-    b: [&[f32]; MB],
-    kc: usize,
-    acc: &mut [[f32; LANES]],
-) {
-    let mut t = [[[0f32; LANES]; MB]; R];
-    let mut k = 0;
-    while k < kc {
-        let mut bv = [[0f32; LANES]; MB];
-        for j in 0..MB {
-            bv[j].copy_from_slice(&b[j][k..k + LANES]);
+/// The visiting order of (row block, basis-row block) tiles within one pixel block: rows in
+/// blocks of 4 (two fields; a last block of 2) inside basis rows in blocks of 3 (last of 1
+/// or 2), so each basis value is read from memory once per call.
+fn tiles(rows: usize, cols: Range<usize>, mut f: impl FnMut(usize, usize, usize, usize)) {
+    let mut j = cols.start;
+    while j < cols.end {
+        let nj = (cols.end - j).min(3);
+        let mut r0 = 0;
+        while r0 < rows {
+            let nr = if rows - r0 >= 4 { 4 } else { 2 };
+            f(r0, nr, j, nj);
+            r0 += nr;
         }
-        for r in 0..R {
-            let mut av = [0f32; LANES];
-            av.copy_from_slice(&a[r][k..k + LANES]);
-            for j in 0..MB {
-                for l in 0..LANES {
-                    t[r][j][l] = if FMA {
-                        av[l].mul_add(bv[j][l], t[r][j][l])
-                    } else {
-                        av[l] * bv[j][l] + t[r][j][l]
-                    };
-                }
-            }
-        }
-        k += LANES;
-    }
-    for r in 0..R {
-        for j in 0..MB {
-            acc[r * MB + j] = t[r][j];
-        }
+        j += nj;
     }
 }
 
+/// Sum of 8 f32 lanes in a fixed tree order: (l, l + 4), then (l, l + 2), then (0, 1).
 #[inline(always)]
-fn run_generic<const FMA: bool>(job: &Job, out: &mut ArrayViewMut2<Complex64>) {
-    const R: usize = 4;
-    let mut acc = [[0f32; LANES]; 12];
+fn hsum(v: [f32; LANES]) -> f32 {
+    let a = [v[0] + v[4], v[1] + v[5], v[2] + v[6], v[3] + v[7]];
+    let b = [a[0] + a[2], a[1] + a[3]];
+    b[0] + b[1]
+}
+
+/// Portable version of the block loop (no FMA).
+fn blocks_portable(job: &Job, dots: &mut [f64]) {
+    let nc = job.cols.len();
     for (blk, k0) in (0..job.k_pad).step_by(BLOCK_PX).enumerate() {
         let kc = BLOCK_PX.min(job.k_pad - k0);
-        let bbase = blk * BLOCK_PX * job.nb;
-        let brow = |j: usize| &job.basis[bbase + j * kc..][..kc];
-        let arow = |r: usize| {
-            &job.packed[(r / 2) * job.stride + 2 * blk * BLOCK_PX + (r % 2) * kc..][..kc]
-        };
-        let mut r0 = 0;
-        while r0 < job.rows {
-            // rows come in (re, im) pairs: blocks of 4 rows, then one of 2
-            let two = job.rows - r0 < R;
-            let mut j = job.cols.start;
-            while j < job.cols.end {
-                let left = job.cols.end - j;
-                macro_rules! go {
-                    ($r:literal, $mb:literal) => {{
-                        let a: [&[f32]; $r] = std::array::from_fn(|i| arow(r0 + i));
-                        let b: [&[f32]; $mb] = std::array::from_fn(|i| brow(j + i));
-                        tile::<$r, $mb, FMA>(a, b, kc, &mut acc);
-                        store::<$r, $mb>(job, r0, j, &acc, out);
-                        j += $mb;
-                    }};
-                }
-                match (two, left) {
-                    (false, 3..) => go!(4, 3),
-                    (false, 2) => go!(4, 2),
-                    (false, _) => go!(4, 1),
-                    (true, 3..) => go!(2, 3),
-                    (true, 2) => go!(2, 2),
-                    (true, _) => go!(2, 1),
+        tiles(job.rows, job.cols.clone(), |r0, nr, j0, nj| {
+            for r in r0..r0 + nr {
+                let a = job.field_row(blk, kc, r);
+                for j in j0..j0 + nj {
+                    let b = job.basis_row(blk, kc, j);
+                    let mut t = [0f32; LANES];
+                    for (ac, bc) in a.chunks_exact(LANES).zip(b.chunks_exact(LANES)) {
+                        for l in 0..LANES {
+                            t[l] += ac[l] * bc[l];
+                        }
+                    }
+                    dots[r * nc + j - job.cols.start] += hsum(t) as f64;
                 }
             }
-            r0 += if two { 2 } else { R };
-        }
+        });
+    }
+}
+
+impl Job<'_> {
+    /// Field row `r` (2f: Re E_f, 2f + 1: Im E_f) in pixel block `blk` of width `kc`.
+    #[inline(always)]
+    fn field_row(&self, blk: usize, kc: usize, r: usize) -> &[f32] {
+        &self.packed[(r / 2) * self.stride + 2 * blk * BLOCK_PX + (r % 2) * kc..][..kc]
+    }
+
+    /// Basis row `j` in pixel block `blk` of width `kc`.
+    #[inline(always)]
+    fn basis_row(&self, blk: usize, kc: usize, j: usize) -> &[f32] {
+        &self.basis[blk * BLOCK_PX * self.nb + j * kc..][..kc]
     }
 }
 
 #[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-unsafe fn run_avx2_fma(job: &Job, out: &mut ArrayViewMut2<Complex64>) {
-    run_generic::<true>(job, out)
-}
+mod avx2 {
+    //! The block loop with AVX2 + FMA: a tile of up to 4 field rows x 3 basis rows keeps its
+    //! 12 sums in registers over a pixel block.
+    use super::{hsum, tiles, Job, BLOCK_PX, LANES};
+    use std::arch::x86_64::*;
 
-fn run(job: &Job, out: &mut ArrayViewMut2<Complex64>) {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
-            // SAFETY: the CPU supports the features the function is compiled for.
-            unsafe { run_avx2_fma(job, out) };
-            return;
+    #[target_feature(enable = "avx2,fma")]
+    pub(super) unsafe fn blocks(job: &Job, dots: &mut [f64]) {
+        let nc = job.cols.len();
+        for (blk, k0) in (0..job.k_pad).step_by(BLOCK_PX).enumerate() {
+            let kc = BLOCK_PX.min(job.k_pad - k0);
+            tiles(job.rows, job.cols.clone(), |r0, nr, j0, nj| {
+                let a: [&[f32]; 4] =
+                    std::array::from_fn(|i| job.field_row(blk, kc, r0 + i.min(nr - 1)));
+                let b: [&[f32]; 3] =
+                    std::array::from_fn(|i| job.basis_row(blk, kc, j0 + i.min(nj - 1)));
+                let mut t = [[0f32; LANES]; 12];
+                // SAFETY: avx2 and fma are enabled for this function's caller.
+                unsafe {
+                    match (nr, nj) {
+                        (4, 3) => tile::<4, 3>(&a, &b, kc, &mut t),
+                        (4, 2) => tile::<4, 2>(&a, &b, kc, &mut t),
+                        (4, _) => tile::<4, 1>(&a, &b, kc, &mut t),
+                        (_, 3) => tile::<2, 3>(&a, &b, kc, &mut t),
+                        (_, 2) => tile::<2, 2>(&a, &b, kc, &mut t),
+                        _ => tile::<2, 1>(&a, &b, kc, &mut t),
+                    }
+                }
+                for r in 0..nr {
+                    for j in 0..nj {
+                        dots[(r0 + r) * nc + j0 + j - job.cols.start] += hsum(t[r * 3 + j]) as f64;
+                    }
+                }
+            });
         }
     }
-    run_generic::<false>(job, out)
+
+    /// `t[r * 3 + j]` = lane sums of a[r] * b[j] over `kc` pixels (kc a multiple of 8).
+    #[inline]
+    #[target_feature(enable = "avx2,fma")]
+    unsafe fn tile<const R: usize, const MB: usize>(
+        a: &[&[f32]; 4],
+        b: &[&[f32]; 3],
+        kc: usize,
+        t: &mut [[f32; LANES]; 12],
+    ) {
+        let mut acc = [[_mm256_setzero_ps(); MB]; R];
+        let ap: [*const f32; R] = std::array::from_fn(|r| a[r].as_ptr());
+        let bp: [*const f32; MB] = std::array::from_fn(|j| b[j].as_ptr());
+        let mut k = 0;
+        while k < kc {
+            // SAFETY: every row holds kc values and k + 8 <= kc.
+            let bv: [__m256; MB] =
+                std::array::from_fn(|j| unsafe { _mm256_loadu_ps(bp[j].add(k)) });
+            for r in 0..R {
+                let av = unsafe { _mm256_loadu_ps(ap[r].add(k)) };
+                for j in 0..MB {
+                    acc[r][j] = _mm256_fmadd_ps(av, bv[j], acc[r][j]);
+                }
+            }
+            k += LANES;
+        }
+        for r in 0..R {
+            for j in 0..MB {
+                // SAFETY: t holds 8 f32 per entry.
+                unsafe { _mm256_storeu_ps(t[r * 3 + j].as_mut_ptr(), acc[r][j]) };
+            }
+        }
+    }
 }
 
 /// Power of a field on a grid, `sum |E|^2 dA`.
@@ -417,5 +455,82 @@ pub fn captured_power(coefficients: &[Complex64], field_power: f64) -> f64 {
         coefficients.iter().map(|c| c.norm_sqr()).sum::<f64>() / field_power
     } else {
         0.0
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The portable and the AVX2 block loops both give the f64 sums of products of the packed
+    /// rows to PROJECTION_RELATIVE_ERROR of the rows' norms (error bound: Higham, Accuracy
+    /// and Stability of Numerical Algorithms, 2nd ed., eq. 3.5); more pixels than one block
+    /// and a frame count that leaves a row block of 2.
+    #[test]
+    fn block_loops_match_f64_sums() {
+        let (nx, ny, modes, frames) = (40, 30, 5, 3);
+        let g = Grid::centred(nx, ny, 0.5);
+        let basis = Array3::from_shape_fn((modes, ny, nx), |(k, y, x)| {
+            let t = (k * 1301 + y * 41 + x) as f64;
+            Complex64::new((0.7 * t).sin(), (0.3 * t).cos())
+        });
+        let pr = Projector::new(basis.view(), &g).unwrap();
+        assert!(pr.k_pad > BLOCK_PX && !pr.real);
+        let fields: Vec<Vec<Complex64>> = (0..frames)
+            .map(|f| {
+                (0..nx * ny)
+                    .map(|i| Complex64::new((0.11 * (i + 7 * f) as f64).cos(), 0.5))
+                    .collect()
+            })
+            .collect();
+        let mut packed = vec![0f32; frames * pr.packed_len()];
+        for (f, d) in fields.iter().zip(packed.chunks_exact_mut(pr.packed_len())) {
+            pr.pack_field(f, d);
+        }
+        let job = pr.job(&packed, frames, 0..modes);
+        let nc = job.cols.len();
+        let mut want = vec![0f64; job.rows * nc];
+        let (mut a2, mut b2) = (vec![0f64; job.rows], vec![0f64; nc]);
+        let da = g.pixel_area_um2();
+        for (f, field) in fields.iter().enumerate() {
+            for k in 0..modes {
+                for (p, e) in field.iter().enumerate() {
+                    let b = basis[[k, p / nx, p % nx]].conj() * da;
+                    for (r, ev) in [(2 * f, e.re), (2 * f + 1, e.im)] {
+                        for (j, bv) in [(2 * k, b.re), (2 * k + 1, b.im)] {
+                            want[r * nc + j] += ev * bv;
+                            if k == 0 {
+                                a2[r] += ev * ev;
+                            }
+                            if f == 0 {
+                                b2[j] += bv * bv;
+                            }
+                        }
+                    }
+                }
+            }
+        }
+        let mut runs = Vec::new();
+        let mut d = vec![0f64; job.rows * nc];
+        blocks_portable(&job, &mut d);
+        runs.push(d);
+        #[cfg(target_arch = "x86_64")]
+        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+            let mut d = vec![0f64; job.rows * nc];
+            // SAFETY: the features were detected.
+            unsafe { avx2::blocks(&job, &mut d) };
+            runs.push(d);
+        }
+        for d in &runs {
+            for i in 0..d.len() {
+                let tol = PROJECTION_RELATIVE_ERROR * (a2[i / nc] * b2[i % nc]).sqrt();
+                assert!(
+                    (d[i] - want[i]).abs() <= tol,
+                    "{i}: {} vs {}",
+                    d[i],
+                    want[i]
+                );
+            }
+        }
     }
 }

@@ -561,10 +561,10 @@ fn captured_power_agrees_in_real_and_fourier_space() {
         "Fourier {cap_f}, real {cap_r}"
     );
     // The decoder's captured power comes from the f32 projection: with unit-norm modes each
-    // coefficient is within eps sqrt(P) of the exact one (eps = F32_RELATIVE_ERROR), so
+    // coefficient is within eps sqrt(P) of the exact one (eps = PROJECTION_RELATIVE_ERROR), so
     // |d captured| <= 2 eps sqrt(M captured) + M eps^2 for M modes (triangle and
     // Cauchy-Schwarz inequalities).
-    let eps = modegram::projection::F32_RELATIVE_ERROR;
+    let eps = modegram::projection::PROJECTION_RELATIVE_ERROR;
     let m = basis.dim().0 as f64;
     let tol = 2.0 * eps * (m * cap_r).sqrt() + m * eps * eps;
     let cap_d = dec.captured[[0, 0]];
@@ -608,12 +608,12 @@ fn direct_overlaps(
 
 /// The batched projection equals the direct sums c_k = sum conj(psi_k) E dA
 /// (docs/conventions.md "Modes"). The projection runs in f32 with f64 block sums: each
-/// coefficient is within F32_RELATIVE_ERROR of ||psi_k|| ||E|| dA (the Cauchy-Schwarz
+/// coefficient is within PROJECTION_RELATIVE_ERROR of ||psi_k|| ||E|| dA (the Cauchy-Schwarz
 /// bound on |c_k|; error analysis of summation: Higham, Accuracy and Stability of
 /// Numerical Algorithms, 2nd ed., section 3.1).
 #[test]
 fn batched_projection_equals_direct_sums() {
-    use modegram::projection::{Projector, F32_RELATIVE_ERROR};
+    use modegram::projection::{Projector, PROJECTION_RELATIVE_ERROR};
     let g = Grid::centred(12, 10, 0.7);
     let modes = 5;
     let basis = Array3::from_shape_fn((modes, 10, 12), |(k, y, x)| {
@@ -633,7 +633,7 @@ fn batched_projection_equals_direct_sums() {
     for (i, (s, bound)) in direct_overlaps(&basis, &fields, &g).into_iter().enumerate() {
         let (f, k) = (i / modes, i % modes);
         assert!(
-            (s - c[[f, k]]).norm() <= F32_RELATIVE_ERROR * bound,
+            (s - c[[f, k]]).norm() <= PROJECTION_RELATIVE_ERROR * bound,
             "frame {f} mode {k}: {} vs {s}",
             c[[f, k]]
         );
@@ -646,7 +646,7 @@ fn batched_projection_equals_direct_sums() {
 /// the test above; a split of frames or modes changes no bit (common practice, no source).
 #[test]
 fn real_basis_on_a_disk_projects_like_direct_sums() {
-    use modegram::projection::{Projector, F32_RELATIVE_ERROR};
+    use modegram::projection::{Projector, PROJECTION_RELATIVE_ERROR};
     let (nx, ny) = (40, 36);
     let g = Grid::centred(nx, ny, 0.5);
     let modes = 7;
@@ -680,7 +680,7 @@ fn real_basis_on_a_disk_projects_like_direct_sums() {
     for (i, (s, bound)) in direct_overlaps(&basis, &fields, &g).into_iter().enumerate() {
         let (f, k) = (i / modes, i % modes);
         assert!(
-            (s - c[[f, k]]).norm() <= F32_RELATIVE_ERROR * bound,
+            (s - c[[f, k]]).norm() <= PROJECTION_RELATIVE_ERROR * bound,
             "frame {f} mode {k}: {} vs {s}",
             c[[f, k]]
         );

@@ -5,9 +5,10 @@
 //! found automatically, window radius given or automatic, decoded grid, background and
 //! reference amplitude), collecting warnings about the separation of the orders; errors name
 //! the setup key or the file and frame. [`decode_prepared`] then streams the frames (one
-//! batch at a time, never the whole stack), decodes them in parallel over frames with
-//! per-thread scratch, and projects each channel's fields on its sampled basis with one
-//! matrix product per batch. [`decode_stack`] does both. Signs and normalisation follow
+//! batch at a time, never the whole stack; the next batch is read while the current one is
+//! decoded), decodes them in parallel over frames with per-thread scratch (each field also
+//! packed for its projector), and projects each channel's fields on its sampled basis with
+//! one matrix product per batch and range of modes. [`decode_stack`] does both. Signs and normalisation follow
 //! docs/conventions.md; the method is described in docs/decoding.md (Takeda, Ina &
 //! Kobayashi 1982, JOSA 72, 156; Cuche, Marquet & Depeursinge 2000, Appl. Opt. 39, 4070).
 use crate::error::{Error, Result};
@@ -181,7 +182,9 @@ pub fn decode_prepared(
         4 * threads
     };
     let npix: Vec<usize> = p.plans.iter().map(|q| q.len()).collect();
+    // Two sets of frame buffers: the next batch is read while the current one is decoded.
     let mut bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
+    let mut next_bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
     let mut b = Batch {
         fields: npix.iter().map(|&n| Array2::zeros((batch, n))).collect(),
         packed: projectors
@@ -204,39 +207,24 @@ pub fn decode_prepared(
     let mut cap_all: Vec<f64> = Vec::with_capacity(cap * nch);
     let mut kept: Vec<Vec<Complex64>> = vec![Vec::new(); if opts.keep_fields { nch } else { 0 }];
     let mut done = 0usize;
-    loop {
-        let mut n = 0;
-        while n < batch {
-            if stack.read_next(&mut bufs[n])?.is_none() {
-                break;
-            }
-            n += 1;
-        }
-        if n == 0 {
-            break;
-        }
-        decode_batch(p, projectors, &bufs[..n], &mut b, &mut scratch, per, fw);
-        if !projectors.is_empty() {
-            // One product per (channel, range of modes): the packed basis is streamed once
-            // per batch; channels in parallel, their modes split further only when there
-            // are fewer channels than threads.
-            let slices = (threads / nch.max(1)).max(1).min(n_modes.max(1));
-            let modes_per = n_modes.div_ceil(slices).max(1);
-            let mut jobs = Vec::with_capacity(nch * slices);
-            for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
-                let mut rest = c.slice_mut(s![..n, ..]);
-                let mut k = 0;
-                while k < n_modes {
-                    let take = modes_per.min(n_modes - k);
-                    let (head, tail) = rest.split_at(Axis(1), take);
-                    jobs.push((q, pk.as_slice(), k..k + take, head));
-                    rest = tail;
-                    k += take;
-                }
-            }
-            jobs.into_par_iter()
-                .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
-        }
+    let mut n = read_batch(&mut stack, &mut bufs)?;
+    while n > 0 {
+        let (next, ()) = rayon::join(
+            || read_batch(&mut stack, &mut next_bufs),
+            || {
+                project_batch(
+                    p,
+                    projectors,
+                    &bufs[..n],
+                    &mut b,
+                    &mut scratch,
+                    per,
+                    fw,
+                    threads,
+                )
+            },
+        );
+        let next = next?;
         for i in 0..n {
             for (ch, coeffs) in b.coeffs.iter().enumerate() {
                 let c = coeffs.row(i);
@@ -257,6 +245,8 @@ pub fn decode_prepared(
         }
         done += n;
         progress(done);
+        std::mem::swap(&mut bufs, &mut next_bufs);
+        n = next;
     }
     let frames_n = done;
     let shape2 = (frames_n, nch);
@@ -283,6 +273,56 @@ pub fn decode_prepared(
         fields,
         warnings: p.warnings.clone(),
     })
+}
+
+/// Read up to `bufs.len()` frames; the number read.
+fn read_batch(stack: &mut FrameStack, bufs: &mut [Vec<f32>]) -> Result<usize> {
+    let mut n = 0;
+    while n < bufs.len() {
+        if stack.read_next(&mut bufs[n])?.is_none() {
+            break;
+        }
+        n += 1;
+    }
+    Ok(n)
+}
+
+/// Decode a batch and, with projectors, project it: one product per (channel, range of
+/// modes), so the packed basis is streamed once per batch; channels in parallel, their
+/// modes split further only when there are fewer channels than threads.
+#[allow(clippy::too_many_arguments)]
+fn project_batch(
+    p: &Prepared,
+    projectors: &[Projector],
+    bufs: &[Vec<f32>],
+    b: &mut Batch,
+    scratch: &mut [Vec<Scratch>],
+    per: usize,
+    fw: usize,
+    threads: usize,
+) {
+    let n = bufs.len();
+    let nch = p.plans.len();
+    let n_modes = projectors.first().map_or(0, |q| q.n_modes());
+    decode_batch(p, projectors, bufs, b, scratch, per, fw);
+    if !projectors.is_empty() {
+        let slices = (threads / nch.max(1)).max(1).min(n_modes.max(1));
+        let modes_per = n_modes.div_ceil(slices).max(1);
+        let mut jobs = Vec::with_capacity(nch * slices);
+        for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
+            let mut rest = c.slice_mut(s![..n, ..]);
+            let mut k = 0;
+            while k < n_modes {
+                let take = modes_per.min(n_modes - k);
+                let (head, tail) = rest.split_at(Axis(1), take);
+                jobs.push((q, pk.as_slice(), k..k + take, head));
+                rest = tail;
+                k += take;
+            }
+        }
+        jobs.into_par_iter()
+            .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
+    }
 }
 
 /// Decode `bufs` into the batch's field rows, in parallel over `per`-frame chunks, each chunk
