@@ -4,7 +4,8 @@
 //! window 0.08 cycles/px), a 256 x 256 decoded grid and two 110-column bases: a random
 //! complex one over the whole grid, and the LP modes of a 50 um graded fibre (NA 0.2,
 //! 1550 nm, 10 groups = 55 modes, taken twice, the second copy 1 um off centre), on the
-//! same 1.1 um grid (281 um wide: the overlap skips the pixels far outside the core) and on
+//! same grid (1.1 um pitch at 1024^2, 2.2 um at 2048^2: the overlap skips the pixels far
+//! outside the core) and on
 //! a grid of 0.4 um pitch (the core fills half its width: every pixel counts). The batch runs as in the decoder:
 //! frames decoded and packed in parallel, then one product per range of modes.
 //! Baseline in the same run: realfft rows + rustfft columns of the whole frame (f32).
@@ -152,9 +153,17 @@ fn bench(c: &mut Criterion) {
         // the LP grid: 256 px of 0.4 um, i.e. 0.4 * 256 / n um per camera pixel
         let p_lp = plan(n, 0.4 * 256.0 / n as f64);
         let cases = [
-            ("random basis", random_basis(&p, 110), &p),
-            ("LP basis, 1.1 um grid", lp_basis(&p, &lp), &p),
-            ("LP basis, 0.4 um grid", lp_basis(&p_lp, &lp), &p_lp),
+            ("random basis".to_string(), random_basis(&p, 110), &p),
+            (
+                format!("LP basis, {:.1} um grid", p.grid.pitch_um),
+                lp_basis(&p, &lp),
+                &p,
+            ),
+            (
+                "LP basis, 0.4 um grid".to_string(),
+                lp_basis(&p_lp, &lp),
+                &p_lp,
+            ),
         ];
         for (name, pr, pl) in &cases {
             eprintln!(
@@ -172,6 +181,17 @@ fn bench(c: &mut Criterion) {
             };
             g.bench_function(format!("decode+project batch, {name} (frames/s)"), |bn| {
                 bn.iter(|| run_batch(pl, pr, &mut b, &mut scratch, per))
+            });
+            // the projection's share of one thread's work: pack and project the batch's
+            // fields (filled by the run above), one thread
+            let plen = pr.packed_len();
+            g.bench_function(format!("pack+project batch, {name}, one thread"), |bn| {
+                bn.iter(|| {
+                    for (f, d) in b.fields.outer_iter().zip(b.packed.chunks_exact_mut(plen)) {
+                        pr.pack_field(f.as_slice().unwrap(), d);
+                    }
+                    pr.project_packed(&b.packed, batch, 0..pr.n_modes(), b.coef.view_mut());
+                })
             });
         }
         g.throughput(Throughput::Elements(1));

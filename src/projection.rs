@@ -390,15 +390,46 @@ mod avx2 {
                 let b: [&[f32]; 3] =
                     std::array::from_fn(|i| job.basis_row(blk, kc, j0 + i.min(nj - 1)));
                 let mut t = [[0f32; LANES]; 12];
+                // Fetch from memory what comes next: with the first rows, the next three
+                // basis rows (or those of the next pixel block); with the last basis rows,
+                // these field rows of the next pixel block.
+                let mut pf = [std::ptr::null::<f32>(); 8];
+                let mut npf = 0;
+                let next = j0 + nj;
+                let more = k0 + kc < job.k_pad;
+                let next_kc = BLOCK_PX.min(job.k_pad.saturating_sub(k0 + kc));
+                if r0 == 0 {
+                    let (nb, nk, rows) = if next < job.cols.end {
+                        (blk, kc, next..(next + 3).min(job.cols.end))
+                    } else if more {
+                        (
+                            blk + 1,
+                            next_kc,
+                            job.cols.start..(job.cols.start + 3).min(job.cols.end),
+                        )
+                    } else {
+                        (blk, kc, 0..0)
+                    };
+                    for j in rows {
+                        pf[npf] = job.basis_row(nb, nk, j).as_ptr();
+                        npf += 1;
+                    }
+                }
+                if next >= job.cols.end && more {
+                    for r in r0..r0 + nr {
+                        pf[npf] = job.field_row(blk + 1, next_kc, r).as_ptr();
+                        npf += 1;
+                    }
+                }
                 // SAFETY: avx2 and fma are enabled for this function's caller.
                 unsafe {
                     match (nr, nj) {
-                        (4, 3) => tile::<4, 3>(&a, &b, kc, &mut t),
-                        (4, 2) => tile::<4, 2>(&a, &b, kc, &mut t),
-                        (4, _) => tile::<4, 1>(&a, &b, kc, &mut t),
-                        (_, 3) => tile::<2, 3>(&a, &b, kc, &mut t),
-                        (_, 2) => tile::<2, 2>(&a, &b, kc, &mut t),
-                        _ => tile::<2, 1>(&a, &b, kc, &mut t),
+                        (4, 3) => tile::<4, 3>(&a, &b, kc, &mut t, &pf[..npf]),
+                        (4, 2) => tile::<4, 2>(&a, &b, kc, &mut t, &pf[..npf]),
+                        (4, _) => tile::<4, 1>(&a, &b, kc, &mut t, &pf[..npf]),
+                        (_, 3) => tile::<2, 3>(&a, &b, kc, &mut t, &pf[..npf]),
+                        (_, 2) => tile::<2, 2>(&a, &b, kc, &mut t, &pf[..npf]),
+                        _ => tile::<2, 1>(&a, &b, kc, &mut t, &pf[..npf]),
                     }
                 }
                 for r in 0..nr {
@@ -410,7 +441,9 @@ mod avx2 {
         }
     }
 
-    /// `t[r * 3 + j]` = lane sums of a[r] * b[j] over `kc` pixels (kc a multiple of 8).
+    /// `t[r * 3 + j]` = lane sums of a[r] * b[j] over `kc` pixels (kc a multiple of 8);
+    /// meanwhile asks for the cache lines of the rows starting at `pf` (prefetches never
+    /// fault, so the addresses are formed with wrapping arithmetic).
     #[inline]
     #[target_feature(enable = "avx2,fma")]
     unsafe fn tile<const R: usize, const MB: usize>(
@@ -418,12 +451,18 @@ mod avx2 {
         b: &[&[f32]; 3],
         kc: usize,
         t: &mut [[f32; LANES]; 12],
+        pf: &[*const f32],
     ) {
         let mut acc = [[_mm256_setzero_ps(); MB]; R];
         let ap: [*const f32; R] = std::array::from_fn(|r| a[r].as_ptr());
         let bp: [*const f32; MB] = std::array::from_fn(|j| b[j].as_ptr());
         let mut k = 0;
         while k < kc {
+            if k % 16 == 0 {
+                for &p in pf {
+                    _mm_prefetch::<_MM_HINT_T0>(p.wrapping_add(k) as *const i8);
+                }
+            }
             // SAFETY: every row holds kc values and k + 8 <= kc.
             let bv: [__m256; MB] =
                 std::array::from_fn(|j| unsafe { _mm256_loadu_ps(bp[j].add(k)) });
