@@ -30,6 +30,9 @@ pub mod window;
 pub use plan::{DecodePlan, PlanSpec, RefAmplitude, Scratch};
 pub use prepare::{choose_grid, fibre_bandwidth_cycles_per_px, lowpass_to_grid, prepare};
 
+/// Frames projected together (at most; a multiple of the batch).
+pub const PROJECT_FRAMES: usize = 32;
+
 /// Peak-to-median ratio of the mean |spectrum| below which no sideband is taken as found.
 pub const MIN_SIDEBAND_CONTRAST: f64 = 8.0;
 
@@ -145,6 +148,7 @@ pub fn projectors(p: &Prepared, basis: Option<BasisSampler>) -> Result<Vec<Proje
         .collect()
 }
 
+/// Working arrays: `fields` for one batch; the rest for a group of batches projected together.
 struct Batch {
     fields: Vec<Array2<Complex64>>,
     /// Per channel the fields packed for its projector, `packed_len()` values per frame.
@@ -181,6 +185,13 @@ pub fn decode_prepared(
     } else {
         4 * threads
     };
+    // Fields are projected in groups of several batches (up to PROJECT_FRAMES frames):
+    // each product streams the packed basis once, so larger groups cost less per frame.
+    let group = if projectors.is_empty() {
+        batch
+    } else {
+        (PROJECT_FRAMES / batch).max(1) * batch
+    };
     let npix: Vec<usize> = p.plans.iter().map(|q| q.len()).collect();
     // Two sets of frame buffers: the next batch is read while the current one is decoded.
     let mut bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
@@ -189,11 +200,11 @@ pub fn decode_prepared(
         fields: npix.iter().map(|&n| Array2::zeros((batch, n))).collect(),
         packed: projectors
             .iter()
-            .map(|q| vec![0f32; batch * q.packed_len()])
+            .map(|q| vec![0f32; group * q.packed_len()])
             .collect(),
-        coeffs: (0..nch).map(|_| Array2::zeros((batch, n_modes))).collect(),
-        sat: vec![0; batch * nch],
-        power: vec![0.0; batch * nch],
+        coeffs: (0..nch).map(|_| Array2::zeros((group, n_modes))).collect(),
+        sat: vec![0; group * nch],
+        power: vec![0.0; group * nch],
     };
     let chunks = threads.min(batch);
     let per = batch.div_ceil(chunks);
@@ -207,12 +218,15 @@ pub fn decode_prepared(
     let mut cap_all: Vec<f64> = Vec::with_capacity(cap * nch);
     let mut kept: Vec<Vec<Complex64>> = vec![Vec::new(); if opts.keep_fields { nch } else { 0 }];
     let mut done = 0usize;
+    // frames decoded but not yet projected, at the start of the group's buffers
+    let mut pending = 0;
     let mut n = read_batch(&mut stack, &mut bufs)?;
     while n > 0 {
+        let project_now = pending + n + batch > group;
         let (next, ()) = rayon::join(
             || read_batch(&mut stack, &mut next_bufs),
             || {
-                project_batch(
+                decode_batch(
                     p,
                     projectors,
                     &bufs[..n],
@@ -220,28 +234,38 @@ pub fn decode_prepared(
                     &mut scratch,
                     per,
                     fw,
-                    threads,
-                )
+                    pending,
+                );
+                if project_now {
+                    project_group(projectors, &mut b, pending + n, threads);
+                }
             },
         );
         let next = next?;
-        for i in 0..n {
-            for (ch, coeffs) in b.coeffs.iter().enumerate() {
-                let c = coeffs.row(i);
-                let pw = b.power[i * nch + ch];
-                coef.extend(c.iter());
-                sat_all.push(b.sat[i * nch + ch]);
-                pow_all.push(pw);
-                let sum_c2: f64 = c.iter().map(|z| z.norm_sqr()).sum();
-                cap_all.push(if n_modes > 0 && pw > 0.0 {
-                    sum_c2 / pw
-                } else {
-                    0.0
-                });
-                if let Some(k) = kept.get_mut(ch) {
-                    k.extend(b.fields[ch].row(i).iter());
+        for (k, f) in kept.iter_mut().zip(&b.fields) {
+            k.extend(f.slice(s![..n, ..]).iter());
+        }
+        pending += n;
+        if project_now || next == 0 {
+            if !project_now {
+                project_group(projectors, &mut b, pending, threads);
+            }
+            for i in 0..pending {
+                for (ch, coeffs) in b.coeffs.iter().enumerate() {
+                    let c = coeffs.row(i);
+                    let pw = b.power[i * nch + ch];
+                    coef.extend(c.iter());
+                    sat_all.push(b.sat[i * nch + ch]);
+                    pow_all.push(pw);
+                    let sum_c2: f64 = c.iter().map(|z| z.norm_sqr()).sum();
+                    cap_all.push(if n_modes > 0 && pw > 0.0 {
+                        sum_c2 / pw
+                    } else {
+                        0.0
+                    });
                 }
             }
+            pending = 0;
         }
         done += n;
         progress(done);
@@ -287,46 +311,37 @@ fn read_batch(stack: &mut FrameStack, bufs: &mut [Vec<f32>]) -> Result<usize> {
     Ok(n)
 }
 
-/// Decode a batch and, with projectors, project it: one product per (channel, range of
-/// modes), so the packed basis is streamed once per batch; channels in parallel, their
+/// Project the first `n` packed fields of every channel: one product per (channel, range of
+/// modes), so the packed basis is streamed once per group; channels in parallel, their
 /// modes split further only when there are fewer channels than threads.
-#[allow(clippy::too_many_arguments)]
-fn project_batch(
-    p: &Prepared,
-    projectors: &[Projector],
-    bufs: &[Vec<f32>],
-    b: &mut Batch,
-    scratch: &mut [Vec<Scratch>],
-    per: usize,
-    fw: usize,
-    threads: usize,
-) {
-    let n = bufs.len();
-    let nch = p.plans.len();
+fn project_group(projectors: &[Projector], b: &mut Batch, n: usize, threads: usize) {
+    let nch = projectors.len();
     let n_modes = projectors.first().map_or(0, |q| q.n_modes());
-    decode_batch(p, projectors, bufs, b, scratch, per, fw);
-    if !projectors.is_empty() {
-        let slices = (threads / nch.max(1)).max(1).min(n_modes.max(1));
-        let modes_per = n_modes.div_ceil(slices).max(1);
-        let mut jobs = Vec::with_capacity(nch * slices);
-        for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
-            let mut rest = c.slice_mut(s![..n, ..]);
-            let mut k = 0;
-            while k < n_modes {
-                let take = modes_per.min(n_modes - k);
-                let (head, tail) = rest.split_at(Axis(1), take);
-                jobs.push((q, pk.as_slice(), k..k + take, head));
-                rest = tail;
-                k += take;
-            }
-        }
-        jobs.into_par_iter()
-            .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
+    if nch == 0 {
+        return;
     }
+    let slices = (threads / nch).max(1).min(n_modes.max(1));
+    let modes_per = n_modes.div_ceil(slices).max(1);
+    let mut jobs = Vec::with_capacity(nch * slices);
+    for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
+        let mut rest = c.slice_mut(s![..n, ..]);
+        let mut k = 0;
+        while k < n_modes {
+            let take = modes_per.min(n_modes - k);
+            let (head, tail) = rest.split_at(Axis(1), take);
+            jobs.push((q, pk.as_slice(), k..k + take, head));
+            rest = tail;
+            k += take;
+        }
+    }
+    jobs.into_par_iter()
+        .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
 }
 
 /// Decode `bufs` into the batch's field rows, in parallel over `per`-frame chunks, each chunk
-/// with its own scratch (deterministic for any thread count).
+/// with its own scratch (deterministic for any thread count); the packed fields, saturation
+/// counts and powers go to the group's slots from `off` on.
+#[allow(clippy::too_many_arguments)]
 fn decode_batch(
     p: &Prepared,
     projectors: &[Projector],
@@ -335,6 +350,7 @@ fn decode_batch(
     scratch: &mut [Vec<Scratch>],
     per: usize,
     fw: usize,
+    off: usize,
 ) {
     let nch = p.plans.len();
     let n = bufs.len();
@@ -351,12 +367,15 @@ fn decode_batch(
     let mut packed_chunks: Vec<Vec<&mut [f32]>> = (0..scratch.len()).map(|_| Vec::new()).collect();
     for (pk, q) in b.packed.iter_mut().zip(projectors) {
         let len = q.packed_len();
-        for (c, part) in pk[..n * len].chunks_mut(per * len).enumerate() {
+        for (c, part) in pk[off * len..(off + n) * len]
+            .chunks_mut(per * len)
+            .enumerate()
+        {
             packed_chunks[c].push(part);
         }
     }
-    let sat_chunks = b.sat[..n * nch].chunks_mut(per * nch);
-    let pow_chunks = b.power[..n * nch].chunks_mut(per * nch);
+    let sat_chunks = b.sat[off * nch..(off + n) * nch].chunks_mut(per * nch);
+    let pow_chunks = b.power[off * nch..(off + n) * nch].chunks_mut(per * nch);
     bufs.par_chunks(per)
         .zip(scratch.par_iter_mut())
         .zip(field_chunks.into_par_iter())
