@@ -7,10 +7,11 @@
 //! same grid (1.1 um pitch at 1024^2, 2.2 um at 2048^2: the overlap skips the pixels far
 //! outside the core) and on
 //! a grid of 0.4 um pitch (the core fills half its width: every pixel counts). The batch runs as in the decoder:
-//! frames decoded and packed in parallel, then one product per range of modes.
+//! a group of PROJECT_FRAMES (32) frames decoded and packed in parallel, then one product
+//! per range of modes.
 //! Baseline in the same run: realfft rows + rustfft columns of the whole frame (f32).
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use modegram::decode::{DecodePlan, PlanSpec, RefAmplitude};
+use modegram::decode::{DecodePlan, PlanSpec, RefAmplitude, PROJECT_FRAMES};
 use modegram::grid::Alignment;
 use modegram::modes::Basis;
 use modegram::projection::{field_power, Projector};
@@ -87,16 +88,16 @@ fn lp_basis(p: &DecodePlan, lp: &Basis) -> Projector {
 }
 
 /// Everything one batch needs, allocated once.
-struct Batch {
-    frames: Vec<Vec<f32>>,
+struct Batch<'a> {
+    frames: Vec<&'a [f32]>,
     fields: Array2<Complex64>,
     packed: Vec<f32>,
     power: Vec<f64>,
     coef: Array2<Complex64>,
 }
 
-/// One batch as the decoder runs it: decode, field power and packing per frame on `per`-frame
-/// chunks in parallel, then one product per range of modes.
+/// One group as the decoder runs it: decode, field power and packing per frame on
+/// `per`-frame chunks in parallel, then one product per range of modes.
 fn run_batch(
     p: &DecodePlan,
     pr: &Projector,
@@ -142,7 +143,8 @@ fn bench(c: &mut Criterion) {
     for n in [1024usize, 2048] {
         let f = frame(n);
         let p = plan(n, 0.275);
-        let batch = 4 * threads;
+        // the decoder projects PROJECT_FRAMES frames at a time
+        let batch = PROJECT_FRAMES.max(threads);
         let per = batch.div_ceil(threads);
         let mut scratch: Vec<_> = (0..threads).map(|_| p.scratch()).collect();
         let mut g = c.benchmark_group(format!("decode_{n}"));
@@ -173,7 +175,7 @@ fn bench(c: &mut Criterion) {
                 pr.is_real()
             );
             let mut b = Batch {
-                frames: (0..batch).map(|_| f.clone()).collect(),
+                frames: (0..batch).map(|_| f.as_slice()).collect(),
                 fields: Array2::zeros((batch, pl.len())),
                 packed: vec![0f32; batch * pr.packed_len()],
                 power: vec![0.0; batch],
