@@ -5,9 +5,10 @@
 //! found automatically, window radius given or automatic, decoded grid, background and
 //! reference amplitude), collecting warnings about the separation of the orders; errors name
 //! the setup key or the file and frame. [`decode_prepared`] then streams the frames (one
-//! batch at a time, never the whole stack), decodes them in parallel over frames with
-//! per-thread scratch, and projects each channel's fields on its sampled basis with one
-//! matrix product per batch. [`decode_stack`] does both. Signs and normalisation follow
+//! batch at a time, never the whole stack; the next batch is read while the current one is
+//! decoded), decodes them in parallel over frames with per-thread scratch (each field also
+//! packed for its projector), and projects each channel's fields on its sampled basis with
+//! one matrix product per batch and range of modes. [`decode_stack`] does both. Signs and normalisation follow
 //! docs/conventions.md; the method is described in docs/decoding.md (Takeda, Ina &
 //! Kobayashi 1982, JOSA 72, 156; Cuche, Marquet & Depeursinge 2000, Appl. Opt. 39, 4070).
 use crate::error::{Error, Result};
@@ -28,6 +29,9 @@ pub mod window;
 
 pub use plan::{DecodePlan, PlanSpec, RefAmplitude, Scratch};
 pub use prepare::{choose_grid, fibre_bandwidth_cycles_per_px, lowpass_to_grid, prepare};
+
+/// Frames projected together (at most; a multiple of the batch).
+pub const PROJECT_FRAMES: usize = 32;
 
 /// Peak-to-median ratio of the mean |spectrum| below which no sideband is taken as found.
 pub const MIN_SIDEBAND_CONTRAST: f64 = 8.0;
@@ -144,8 +148,11 @@ pub fn projectors(p: &Prepared, basis: Option<BasisSampler>) -> Result<Vec<Proje
         .collect()
 }
 
+/// Working arrays: `fields` for one batch; the rest for a group of batches projected together.
 struct Batch {
     fields: Vec<Array2<Complex64>>,
+    /// Per channel the fields packed for its projector, `packed_len()` values per frame.
+    packed: Vec<Vec<f32>>,
     coeffs: Vec<Array2<Complex64>>,
     sat: Vec<usize>,
     power: Vec<f64>,
@@ -178,13 +185,26 @@ pub fn decode_prepared(
     } else {
         4 * threads
     };
+    // Fields are projected in groups of several batches (up to PROJECT_FRAMES frames):
+    // each product streams the packed basis once, so larger groups cost less per frame.
+    let group = if projectors.is_empty() {
+        batch
+    } else {
+        (PROJECT_FRAMES / batch).max(1) * batch
+    };
     let npix: Vec<usize> = p.plans.iter().map(|q| q.len()).collect();
+    // Two sets of frame buffers: the next batch is read while the current one is decoded.
     let mut bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
+    let mut next_bufs: Vec<Vec<f32>> = (0..batch).map(|_| vec![0f32; fw * fh]).collect();
     let mut b = Batch {
         fields: npix.iter().map(|&n| Array2::zeros((batch, n))).collect(),
-        coeffs: (0..nch).map(|_| Array2::zeros((batch, n_modes))).collect(),
-        sat: vec![0; batch * nch],
-        power: vec![0.0; batch * nch],
+        packed: projectors
+            .iter()
+            .map(|q| vec![0f32; group * q.packed_len()])
+            .collect(),
+        coeffs: (0..nch).map(|_| Array2::zeros((group, n_modes))).collect(),
+        sat: vec![0; group * nch],
+        power: vec![0.0; group * nch],
     };
     let chunks = threads.min(batch);
     let per = batch.div_ceil(chunks);
@@ -198,58 +218,59 @@ pub fn decode_prepared(
     let mut cap_all: Vec<f64> = Vec::with_capacity(cap * nch);
     let mut kept: Vec<Vec<Complex64>> = vec![Vec::new(); if opts.keep_fields { nch } else { 0 }];
     let mut done = 0usize;
-    loop {
-        let mut n = 0;
-        while n < batch {
-            if stack.read_next(&mut bufs[n])?.is_none() {
-                break;
+    // frames decoded but not yet projected, at the start of the group's buffers
+    let mut pending = 0;
+    let mut n = read_batch(&mut stack, &mut bufs)?;
+    while n > 0 {
+        let project_now = pending + n + batch > group;
+        let (next, ()) = rayon::join(
+            || read_batch(&mut stack, &mut next_bufs),
+            || {
+                decode_batch(
+                    p,
+                    projectors,
+                    &bufs[..n],
+                    &mut b,
+                    &mut scratch,
+                    per,
+                    fw,
+                    pending,
+                );
+                if project_now {
+                    project_group(projectors, &mut b, pending + n, threads);
+                }
+            },
+        );
+        let next = next?;
+        for (k, f) in kept.iter_mut().zip(&b.fields) {
+            k.extend(f.slice(s![..n, ..]).iter());
+        }
+        pending += n;
+        if project_now || next == 0 {
+            if !project_now {
+                project_group(projectors, &mut b, pending, threads);
             }
-            n += 1;
-        }
-        if n == 0 {
-            break;
-        }
-        decode_batch(p, &bufs[..n], &mut b, &mut scratch, per, fw);
-        if !projectors.is_empty() {
-            // One matrix product per (channel, slice of frames): channels in parallel, and
-            // their frames split further only when there are fewer channels than threads.
-            let slices = (threads / nch.max(1)).max(1);
-            let rows_per = n.div_ceil(slices).max(1);
-            let mut jobs = Vec::with_capacity(nch * threads);
-            for ((c, f), q) in b.coeffs.iter_mut().zip(&b.fields).zip(projectors) {
-                let mut rest = c.slice_mut(s![..n, ..]);
-                let mut k = 0;
-                while k < n {
-                    let take = rows_per.min(n - k);
-                    let (head, tail) = rest.split_at(Axis(0), take);
-                    jobs.push((q, f.slice(s![k..k + take, ..]), head));
-                    rest = tail;
-                    k += take;
+            for i in 0..pending {
+                for (ch, coeffs) in b.coeffs.iter().enumerate() {
+                    let c = coeffs.row(i);
+                    let pw = b.power[i * nch + ch];
+                    coef.extend(c.iter());
+                    sat_all.push(b.sat[i * nch + ch]);
+                    pow_all.push(pw);
+                    let sum_c2: f64 = c.iter().map(|z| z.norm_sqr()).sum();
+                    cap_all.push(if n_modes > 0 && pw > 0.0 {
+                        sum_c2 / pw
+                    } else {
+                        0.0
+                    });
                 }
             }
-            jobs.into_par_iter()
-                .for_each(|(q, fc, cc)| q.project_into(fc, cc));
-        }
-        for i in 0..n {
-            for (ch, coeffs) in b.coeffs.iter().enumerate() {
-                let c = coeffs.row(i);
-                let pw = b.power[i * nch + ch];
-                coef.extend(c.iter());
-                sat_all.push(b.sat[i * nch + ch]);
-                pow_all.push(pw);
-                let sum_c2: f64 = c.iter().map(|z| z.norm_sqr()).sum();
-                cap_all.push(if n_modes > 0 && pw > 0.0 {
-                    sum_c2 / pw
-                } else {
-                    0.0
-                });
-                if let Some(k) = kept.get_mut(ch) {
-                    k.extend(b.fields[ch].row(i).iter());
-                }
-            }
+            pending = 0;
         }
         done += n;
         progress(done);
+        std::mem::swap(&mut bufs, &mut next_bufs);
+        n = next;
     }
     let frames_n = done;
     let shape2 = (frames_n, nch);
@@ -278,15 +299,58 @@ pub fn decode_prepared(
     })
 }
 
+/// Read up to `bufs.len()` frames; the number read.
+fn read_batch(stack: &mut FrameStack, bufs: &mut [Vec<f32>]) -> Result<usize> {
+    let mut n = 0;
+    while n < bufs.len() {
+        if stack.read_next(&mut bufs[n])?.is_none() {
+            break;
+        }
+        n += 1;
+    }
+    Ok(n)
+}
+
+/// Project the first `n` packed fields of every channel: one product per (channel, range of
+/// modes), so the packed basis is streamed once per group; channels in parallel, their
+/// modes split further only when there are fewer channels than threads.
+fn project_group(projectors: &[Projector], b: &mut Batch, n: usize, threads: usize) {
+    let nch = projectors.len();
+    let n_modes = projectors.first().map_or(0, |q| q.n_modes());
+    if nch == 0 {
+        return;
+    }
+    let slices = (threads / nch).max(1).min(n_modes.max(1));
+    let modes_per = n_modes.div_ceil(slices).max(1);
+    let mut jobs = Vec::with_capacity(nch * slices);
+    for ((c, pk), q) in b.coeffs.iter_mut().zip(&b.packed).zip(projectors) {
+        let mut rest = c.slice_mut(s![..n, ..]);
+        let mut k = 0;
+        while k < n_modes {
+            let take = modes_per.min(n_modes - k);
+            let (head, tail) = rest.split_at(Axis(1), take);
+            jobs.push((q, pk.as_slice(), k..k + take, head));
+            rest = tail;
+            k += take;
+        }
+    }
+    jobs.into_par_iter()
+        .for_each(|(q, pk, modes, cc)| q.project_packed(pk, n, modes, cc));
+}
+
 /// Decode `bufs` into the batch's field rows, in parallel over `per`-frame chunks, each chunk
-/// with its own scratch (deterministic for any thread count).
+/// with its own scratch (deterministic for any thread count); the packed fields, saturation
+/// counts and powers go to the group's slots from `off` on.
+#[allow(clippy::too_many_arguments)]
 fn decode_batch(
     p: &Prepared,
+    projectors: &[Projector],
     bufs: &[Vec<f32>],
     b: &mut Batch,
     scratch: &mut [Vec<Scratch>],
     per: usize,
     fw: usize,
+    off: usize,
 ) {
     let nch = p.plans.len();
     let n = bufs.len();
@@ -300,20 +364,35 @@ fn decode_batch(
             field_chunks[c].push(part);
         }
     }
-    let sat_chunks = b.sat[..n * nch].chunks_mut(per * nch);
-    let pow_chunks = b.power[..n * nch].chunks_mut(per * nch);
+    let mut packed_chunks: Vec<Vec<&mut [f32]>> = (0..scratch.len()).map(|_| Vec::new()).collect();
+    for (pk, q) in b.packed.iter_mut().zip(projectors) {
+        let len = q.packed_len();
+        for (c, part) in pk[off * len..(off + n) * len]
+            .chunks_mut(per * len)
+            .enumerate()
+        {
+            packed_chunks[c].push(part);
+        }
+    }
+    let sat_chunks = b.sat[off * nch..(off + n) * nch].chunks_mut(per * nch);
+    let pow_chunks = b.power[off * nch..(off + n) * nch].chunks_mut(per * nch);
     bufs.par_chunks(per)
         .zip(scratch.par_iter_mut())
         .zip(field_chunks.into_par_iter())
+        .zip(packed_chunks.into_par_iter())
         .zip(sat_chunks.collect::<Vec<_>>().into_par_iter())
         .zip(pow_chunks.collect::<Vec<_>>().into_par_iter())
-        .for_each(|((((frames, scr), mut outs), sat), pow)| {
+        .for_each(|(((((frames, scr), mut outs), mut packs), sat), pow)| {
             for (i, frame) in frames.iter().enumerate() {
                 for (ch, plan) in p.plans.iter().enumerate() {
                     let npx = plan.len();
                     let out = &mut outs[ch][i * npx..(i + 1) * npx];
                     plan.decode(frame, &mut scr[ch], out);
                     pow[i * nch + ch] = field_power(out, &plan.grid);
+                    if let (Some(q), Some(pk)) = (projectors.get(ch), packs.get_mut(ch)) {
+                        let len = q.packed_len();
+                        q.pack_field(out, &mut pk[i * len..(i + 1) * len]);
+                    }
                     sat[i * nch + ch] = match p.saturation_counts {
                         Some(level) => count_saturated(frame, fw, plan.spec.region, level),
                         None => 0,
