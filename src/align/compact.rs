@@ -30,6 +30,7 @@
 //! centre search and for the spreading of the defocused modes.
 use super::objective::{freq, Fft2};
 use crate::grid::{Alignment, Grid};
+use crate::synth::fft2::smooth_size;
 use ndarray::{linalg::general_mat_mul, Array2, Array3, ArrayView3, Axis};
 use num_complex::Complex64;
 use rayon::prelude::*;
@@ -209,21 +210,11 @@ pub struct Compact {
 
 /// Smallest even n >= m whose prime factors are 2, 3 and 5 (fast FFT sizes).
 fn smooth_even(m: usize) -> usize {
-    let mut n = m.max(2);
-    loop {
-        if n.is_multiple_of(2) {
-            let mut k = n;
-            for p in [2, 3, 5] {
-                while k.is_multiple_of(p) {
-                    k /= p;
-                }
-            }
-            if k == 1 {
-                return n;
-            }
-        }
-        n += 1;
+    let mut n = smooth_size(m.max(2));
+    while !n.is_multiple_of(2) {
+        n = smooth_size(n + 1);
     }
+    n
 }
 
 /// Smallest box half-width (max(|fx|, |fy|)) holding all but `tail` of `power` (FFT order).
