@@ -258,8 +258,7 @@ fn signal_power_scales_with_counts_and_column_power() {
 /// Defocus sign: the camera basis of a Gaussian waist w0 propagated by +dz is the Gaussian
 /// beam u = (w0/w) exp(-r^2/w^2) exp(+i k r^2 / (2 R)) exp(-i atan(z/zR)) (Siegman, Lasers,
 /// 1986, ch. 17, from memory; time convention exp(-i omega t), docs/conventions.md), and a
-/// tilt t_x, applied before the propagation, adds the phase +k t_x x and walks the beam by
-/// t_x dz.
+/// tilt t_x of the recorded field multiplies it by exp(+i k t_x x) without moving it.
 #[test]
 fn defocus_and_tilt_follow_the_documented_signs() {
     let w0 = 3.0;
@@ -281,14 +280,13 @@ fn defocus_and_tilt_follow_the_documented_signs() {
     let norm = (2.0 / PI).sqrt() / w0 * pitch; // continuous normalisation times sqrt(dA)
     for r in 0..64 {
         for c in 0..64 {
-            // tilt first, then propagation: the beam walks by tx dz (paraxial)
+            // propagation, then the tilt phase of the recorded field
             let x = (c as f64 - 32.0) * pitch;
             let y = (r as f64 - 32.0) * pitch;
-            let xs = x - tx * dz;
-            let r2 = xs * xs + y * y;
+            let r2 = x * x + y * y;
             let want = Complex64::from_polar(
                 norm * w0 / wz * (-r2 / (wz * wz)).exp(),
-                k * r2 / (2.0 * rz) - gouy + k * tx * x - k * tx * tx * dz / 2.0,
+                k * r2 / (2.0 * rz) - gouy + k * tx * x,
             );
             worst = worst.max((b[(0, r, c)] - want).norm());
         }

@@ -5,11 +5,13 @@
 //! 1. sample every mode on the region's pixel grid in the fibre plane (pitch = camera pitch /
 //!    magnification, origin at the region's centre pixel), zero-padded on every side, at the
 //!    TRUE alignment (centre, rotation, scale);
-//! 2. multiply by the tilt phase exp(+i k (tx x + ty y)), k = 2 pi / lambda, x, y from the
-//!    region centre;
-//! 3. propagate by +defocus_um with the angular spectrum exp(i (kz - k) dz),
+//! 2. propagate by +defocus_um with the angular spectrum exp(i (kz - k) dz),
 //!    kz = sqrt(k^2 - (2 pi f)^2) (evanescent parts decay for dz > 0, are dropped for dz < 0)
 //!    on the padded grid, so nothing wraps around;
+//! 3. multiply by the tilt phase exp(+i k (tx x + ty y)), k = 2 pi / lambda, x, y from the
+//!    region centre: the tilt is that of the recorded field, so the decoder's correction
+//!    (tilt removed, then propagation by -dz) undoes steps 2-3 exactly and a tilt does not
+//!    move the pattern;
 //! 4. crop to the region and scale by sqrt(dA): B_m[pixel] with sum over pixels |B_m|^2 = 1
 //!    for a mode that lies inside the region.
 //!
@@ -137,7 +139,7 @@ pub fn camera_basis(
     let sq = pitch;
     let (nxp, nyp) = (grid.nx, grid.ny);
     let tilt_x: Vec<Complex64> = (0..nxp)
-        .map(|c| Complex64::from_polar(sq, k * tx * grid.x_um(c)))
+        .map(|c| Complex64::from_polar(1.0, k * tx * grid.x_um(c)))
         .collect();
     let tilt_y: Vec<Complex64> = (0..nyp)
         .map(|r| Complex64::from_polar(1.0, k * ty * grid.y_um(r)))
@@ -168,7 +170,7 @@ pub fn camera_basis(
     for m in 0..n_modes {
         let mode = modes.index_axis_mut(Axis(0), m);
         for ((r, c), v) in mode.indexed_iter() {
-            buf[r * nxp + c] = *v * tilt_x[c] * tilt_y[r];
+            buf[r * nxp + c] = *v * sq;
         }
         if let Some(h) = &transfer {
             fwd.process(&mut buf, &mut scratch);
@@ -180,7 +182,8 @@ pub fn camera_basis(
         }
         for r in 0..ny {
             for c in 0..nx {
-                out[(m, r, c)] = buf[(r + py) * nxp + c + px];
+                let (rp, cp) = (r + py, c + px);
+                out[(m, r, c)] = buf[rp * nxp + cp] * tilt_x[cp] * tilt_y[rp];
             }
         }
     }
