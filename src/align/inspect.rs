@@ -5,7 +5,7 @@
 //! them once more for raw statistics (peak, saturation, the mean power spectrum of the first
 //! frames, the mean frame) and returns the items in channel order. Errors name the file,
 //! frame or key (frames of the wrong size for the regions are reported by the decoder).
-use super::calibrate::{context, decode_raw};
+use super::calibrate::{context, decode_raw, RawFields};
 use super::check::{evaluate, Context, Item, Measured, Thresholds};
 use super::live::dc_distance;
 use super::measure::{field_centroid_um, quick_defocus, reference_uniformity, sideband_to_dc};
@@ -115,6 +115,19 @@ pub fn check_setup(
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Vec<Item>> {
     let raw = decode_raw(setup, frames, progress)?;
+    check_decoded(setup, basis, frames, &raw, th)
+}
+
+/// As [`check_setup`], from fields `raw` already decoded from `frames` by
+/// [`decode_raw`] (tilt and defocus zeroed; the fields do not depend on the setup's
+/// centre, rotation or scale), so a caller that has them does not decode twice.
+pub fn check_decoded(
+    setup: &Setup,
+    basis: &Basis,
+    frames: &[PathBuf],
+    raw: &RawFields,
+    th: &Thresholds,
+) -> Result<Vec<Item>> {
     let dark = match &setup.frames.dark {
         Some(p) => Some(mean_frame(&setup.resolve(p))?.0),
         None => None,

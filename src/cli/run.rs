@@ -8,7 +8,7 @@ use super::{Common, Outcome};
 use crate::align::calibrate::{calibrate, calibration_json, decode_raw, fitted_toml};
 use crate::align::check::{worst, Status, Thresholds};
 use crate::align::fit::FitSpec;
-use crate::align::inspect::check_setup;
+use crate::align::inspect::{check_decoded, check_setup};
 use crate::error::{Error, Result};
 use crate::export::OutDir;
 use crate::grid::Alignment;
@@ -68,6 +68,7 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
 
     // 1. Calibrate.
     let mut calibration = None;
+    let mut raw_fields = None;
     if !args.no_calibrate {
         let pb = super::progress(n_total, "calibrate", q);
         let raw = decode_raw(&setup, std::slice::from_ref(&stack), &|n| {
@@ -76,7 +77,7 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
         pb.finish_and_clear();
         let spec = FitSpec::default();
         let fits = calibrate(&setup, &basis, &raw, None, &spec, &|_, _| {})?;
-        drop(raw);
+        raw_fields = Some(raw);
         for (ch, f) in setup.channels.iter().zip(&fits) {
             if !f.converged {
                 super::warn(
@@ -109,13 +110,13 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     let analysis = pipeline::analyse_sequence(&setup, &basis, &d)?;
 
     // 4. Check the holography with the fitted alignment.
-    let items = check_setup(
-        &setup,
-        &basis,
-        std::slice::from_ref(&stack),
-        &Thresholds::default(),
-        &|_| {},
-    )?;
+    // The calibration's fields serve the check too (they do not depend on the alignment).
+    let frames = std::slice::from_ref(&stack);
+    let items = match &raw_fields {
+        Some(raw) => check_decoded(&setup, &basis, frames, raw, &Thresholds::default())?,
+        None => check_setup(&setup, &basis, frames, &Thresholds::default(), &|_| {})?,
+    };
+    drop(raw_fields);
     let check_status = worst(&items);
 
     // 5. Pictures.
