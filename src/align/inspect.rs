@@ -8,8 +8,8 @@
 use super::calibrate::{context, decode_raw, RawFields};
 use super::check::{evaluate, Context, Item, Measured, Thresholds};
 use super::live::dc_distance;
-use super::measure::{field_centroid_um, quick_defocus, reference_uniformity, sideband_to_dc};
-use super::objective::{captured_per_frame, captured_total, Fft2, Objective, Reduced};
+use super::measure::{field_centroid_um, focus_scan, reference_uniformity, sideband_to_dc};
+use super::objective::Fft2;
 use crate::error::Result;
 use crate::frames::{mean_frame, FrameStack};
 use crate::grid::{Alignment, Grid};
@@ -201,29 +201,16 @@ pub fn check_decoded(
         };
         let sampler = |g: &Grid, al: &Alignment| basis.sample(g, al);
         let n_modes = basis.len();
-        let (dz, _) = quick_defocus(
+        let focus = focus_scan(
             fields.view(),
             &grid,
             fctx.wavelength_nm,
-            &Alignment {
-                defocus_um: a.defocus_um,
-                ..a
-            },
+            &a,
             sampler,
             4.0 * fctx.depth_of_focus_um(),
             n_modes + 10,
         );
-        let captured = {
-            let red = Reduced::new(
-                fields.slice(ndarray::s![..1, .., ..]),
-                &grid,
-                fctx.wavelength_nm,
-                1,
-            );
-            let obj = Objective::new(&red, sampler);
-            let modes = obj.corrected_modes(&a);
-            captured_total(&captured_per_frame(fields.view(), &grid, &modes))
-        };
+        let (dz, captured) = (focus.defocus_um, focus.captured_at_start);
         let m = Measured {
             carrier_cycles_per_px: Some(carrier),
             window_radius: Some(window),

@@ -4,7 +4,10 @@
 //!
 //! Contract: pure functions of their inputs, no I/O; spectra are in FFT bin order
 //! (bin 0 = DC) with frequencies in cycles per pixel (docs/conventions.md).
-use super::objective::{freq, Objective, Reduced};
+use super::compact::{BasisExtent, Compact, Extent, FineFields};
+use super::objective::{
+    captured_total, freq, geometry, overlap_power_per_frame, Objective, Reduced,
+};
 use super::optimise::{golden_section, scan};
 use crate::grid::{Alignment, Grid};
 use ndarray::{Array3, ArrayView2, ArrayView3};
@@ -90,9 +93,80 @@ pub fn field_centroid_um(fields: ArrayView3<Complex64>, grid: &Grid) -> Option<[
     super::fit::centroid_um(&p, grid, 0.05)
 }
 
-/// Defocus (um) that maximises the captured power of `fields` at the fixed geometry and
-/// tilt of `a`: a scan over `a.defocus_um +- range_um` (13 points), then golden section.
-/// Returns (defocus, captured there). The basis is sampled once.
+/// Best focus and captured power of `fields` at the fixed geometry and tilt of `a`.
+#[derive(Debug, Clone, Copy)]
+pub struct FocusScan {
+    /// Defocus (um) that maximises the captured power.
+    pub defocus_um: f64,
+    /// Captured fraction there (reduced objective).
+    pub captured_best: f64,
+    /// Captured fraction at `a` itself, power-weighted over every frame.
+    pub captured_at_start: f64,
+}
+
+/// Defocus that maximises the captured power of `fields` at the fixed geometry and tilt of
+/// `a`: a scan over `a.defocus_um +- range_um` (13 points), then golden section; and the
+/// captured power at `a`. The fields are resampled once onto a compact grid that holds the
+/// modes over the scan ([`super::compact`], all but 1e-5 of the basis power), where the
+/// overlaps equal those on the decoding grid; the denominators stay the decoding grid's
+/// frame powers.
+pub fn focus_scan<S>(
+    fields: ArrayView3<Complex64>,
+    grid: &Grid,
+    wavelength_nm: f64,
+    a: &Alignment,
+    sampler: S,
+    range_um: f64,
+    rank: usize,
+) -> FocusScan
+where
+    S: Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync,
+{
+    let fields = fields.as_standard_layout();
+    let fine = FineFields::new(fields.view(), grid);
+    let bext = {
+        let b = sampler(grid, &geometry(a));
+        BasisExtent::new(b.view(), grid, a.center_um)
+    };
+    let c = Compact::new(
+        &fine,
+        &bext,
+        &Extent {
+            wavelength_nm,
+            center_um: Some(a.center_um),
+            around: vec![*a],
+            center_margin_um: 0.0,
+            defocus_margin_um: range_um,
+            tail: 1e-5,
+        },
+    );
+    let mut red = Reduced::new(c.fields.view(), &c.grid, wavelength_nm, rank);
+    red.total = c.total_power();
+    let obj = Objective::new(&red, sampler);
+    let f = |z: f64| {
+        -obj.captured(&Alignment {
+            defocus_um: z,
+            ..*a
+        })
+    };
+    let n = 13;
+    let (z, _) = scan(f, a.defocus_um - range_um, a.defocus_um + range_um, n);
+    let h = 2.0 * range_um / (n - 1) as f64;
+    let (z, v, _) = golden_section(f, z - h, z + h, 1e-3 * range_um.max(1e-6));
+    let modes = obj.corrected_modes(a);
+    let per: Vec<(f64, f64)> = overlap_power_per_frame(c.fields.view(), &c.grid, &modes)
+        .into_iter()
+        .zip(&c.frame_power)
+        .map(|(num, &p)| (if p > 0.0 { num / p } else { 0.0 }, p))
+        .collect();
+    FocusScan {
+        defocus_um: z,
+        captured_best: -v,
+        captured_at_start: captured_total(&per),
+    }
+}
+
+/// [`focus_scan`]'s best focus: (defocus, captured there).
 pub fn quick_defocus<S>(
     fields: ArrayView3<Complex64>,
     grid: &Grid,
@@ -105,20 +179,8 @@ pub fn quick_defocus<S>(
 where
     S: Fn(&Grid, &Alignment) -> Array3<Complex64> + Sync,
 {
-    let fields = fields.as_standard_layout();
-    let red = Reduced::new(fields.view(), grid, wavelength_nm, rank);
-    let obj = Objective::new(&red, sampler);
-    let f = |z: f64| {
-        -obj.captured(&Alignment {
-            defocus_um: z,
-            ..*a
-        })
-    };
-    let n = 13;
-    let (z, _) = scan(f, a.defocus_um - range_um, a.defocus_um + range_um, n);
-    let h = 2.0 * range_um / (n - 1) as f64;
-    let (z, v, _) = golden_section(f, z - h, z + h, 1e-3 * range_um.max(1e-6));
-    (z, -v)
+    let f = focus_scan(fields, grid, wavelength_nm, a, sampler, range_um, rank);
+    (f.defocus_um, f.captured_best)
 }
 
 #[cfg(test)]
