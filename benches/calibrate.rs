@@ -178,8 +178,8 @@ fn main() {
     let compact = Compact::new(&fine, &bext, &ext);
     let cg = compact.grid;
     println!(
-        "compact grid: {} x {} at {:.3} um (decoding grid 128 x 128 at 0.8 um)",
-        cg.nx, cg.ny, cg.pitch_um
+        "compact grid: {} x {} at {:.3} um (decoding grid 128 x 128 at 0.8 um), band {:.3} cycles/um for a basis band of {:.3}",
+        cg.nx, cg.ny, cg.pitch_um, compact.band_cycles_per_um, compact.mode_band_cycles_per_um
     );
     let red = Reduced::new(compact.fields.view(), &cg, 1064.0, basis.len() + 10);
     let obj = Objective::new(&red, sampler);

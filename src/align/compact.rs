@@ -28,7 +28,7 @@
 //! covers the disk of radius `r_m + margin + max |c - c_0| + (max |dz| + dz_margin) lambda f_B`
 //! around its centre `c_0`, the maxima over the alignments it must hold: room for the
 //! centre search and for the spreading of the defocused modes.
-use super::objective::{freq, Fft2};
+use super::objective::{captured_total, freq, overlap_power_per_frame, Fft2};
 use crate::grid::{Alignment, Grid};
 use crate::synth::fft2::smooth_size;
 use ndarray::{linalg::general_mat_mul, Array2, Array3, ArrayView3, Axis};
@@ -367,6 +367,18 @@ impl Compact {
             tilt_max_mrad,
             defocus_limit_um: dz + ext.defocus_margin_um,
         }
+    }
+
+    /// Power-weighted captured fraction over the frames for modes on the compact grid (from
+    /// [`super::objective::Objective::corrected_modes`]): overlaps here, each frame's power
+    /// on the decoding grid.
+    pub fn captured(&self, modes: &[Vec<Complex64>]) -> f64 {
+        let per: Vec<(f64, f64)> = overlap_power_per_frame(self.fields.view(), &self.grid, modes)
+            .into_iter()
+            .zip(&self.frame_power)
+            .map(|(num, &p)| (if p > 0.0 { num / p } else { 0.0 }, p))
+            .collect();
+        captured_total(&per)
     }
 
     /// Sum of the frames' power on the decoding grid.

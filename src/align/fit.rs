@@ -32,7 +32,7 @@
 //! Recipes, 3rd ed., section 15.5). The reported figure is sqrt(diag Cov), one standard
 //! deviation; it ignores model error (light outside the basis counts as noise).
 use super::compact::{BasisExtent, Compact, Extent, FineFields};
-use super::objective::{captured_total, overlap_power_per_frame, Objective, Reduced};
+use super::objective::{Objective, Reduced};
 use super::optimise::{
     golden_section, gradient, gradient_hessian, nelder_mead, scan, Bounds, NmOptions,
 };
@@ -361,22 +361,12 @@ where
             defocus_margin_um: dof,
             tail: FIT_TAIL,
         });
-        let cgrid = compact.grid;
         let obj = Objective::new(&red, &sampler);
         let eta = |a: &Alignment| {
             count();
             obj.captured(a)
         };
-        let exact = |a: &Alignment| {
-            let modes = obj.corrected_modes(a);
-            let num = overlap_power_per_frame(compact.fields.view(), &cgrid, &modes);
-            let per: Vec<(f64, f64)> = num
-                .iter()
-                .zip(&compact.frame_power)
-                .map(|(&c, &p)| (if p > 0.0 { c / p } else { 0.0 }, p))
-                .collect();
-            captured_total(&per)
-        };
+        let exact = |a: &Alignment| compact.captured(&obj.corrected_modes(a));
 
         // 3. Simplex on every free parameter. Bounds: the modes stay on the compact grid
         // and inside its band (see [`super::compact`]), scale in [0.5, 2], defocus within

@@ -5,9 +5,7 @@
 //! Contract: pure functions of their inputs, no I/O; spectra are in FFT bin order
 //! (bin 0 = DC) with frequencies in cycles per pixel (docs/conventions.md).
 use super::compact::{BasisExtent, Compact, Extent, FineFields};
-use super::objective::{
-    captured_total, freq, geometry, overlap_power_per_frame, Objective, Reduced,
-};
+use super::objective::{freq, geometry, Objective, Reduced};
 use super::optimise::{golden_section, scan};
 use crate::grid::{Alignment, Grid};
 use ndarray::{Array3, ArrayView2, ArrayView3};
@@ -153,16 +151,10 @@ where
     let (z, _) = scan(f, a.defocus_um - range_um, a.defocus_um + range_um, n);
     let h = 2.0 * range_um / (n - 1) as f64;
     let (z, v, _) = golden_section(f, z - h, z + h, 1e-3 * range_um.max(1e-6));
-    let modes = obj.corrected_modes(a);
-    let per: Vec<(f64, f64)> = overlap_power_per_frame(c.fields.view(), &c.grid, &modes)
-        .into_iter()
-        .zip(&c.frame_power)
-        .map(|(num, &p)| (if p > 0.0 { num / p } else { 0.0 }, p))
-        .collect();
     FocusScan {
         defocus_um: z,
         captured_best: -v,
-        captured_at_start: captured_total(&per),
+        captured_at_start: c.captured(&obj.corrected_modes(a)),
     }
 }
 
