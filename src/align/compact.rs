@@ -28,7 +28,7 @@
 //! covers the disk of radius `r_m + margin + max |c - c_0| + (max |dz| + dz_margin) lambda f_B`
 //! around its centre `c_0`, the maxima over the alignments it must hold: room for the
 //! centre search and for the spreading of the defocused modes.
-use super::objective::{captured_total, freq, overlap_power_per_frame, Fft2};
+use super::objective::{captured_total, freq, overlap_power_per_frame, Fft2, Reduced};
 use crate::grid::{Alignment, Grid};
 use crate::synth::fft2::smooth_size;
 use ndarray::{linalg::general_mat_mul, Array2, Array3, ArrayView3, Axis};
@@ -379,6 +379,14 @@ impl Compact {
             .map(|(num, &p)| (if p > 0.0 { num / p } else { 0.0 }, p))
             .collect();
         captured_total(&per)
+    }
+
+    /// The compact fields reduced to at most `rank` principal components, with the decoding
+    /// grid's total power as the objective's denominator.
+    pub fn reduce(&self, wavelength_nm: f64, rank: usize) -> Reduced {
+        let mut r = Reduced::new(self.fields.view(), &self.grid, wavelength_nm, rank);
+        r.total = self.total_power();
+        r
     }
 
     /// Sum of the frames' power on the decoding grid.

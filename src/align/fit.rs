@@ -32,7 +32,7 @@
 //! Recipes, 3rd ed., section 15.5). The reported figure is sqrt(diag Cov), one standard
 //! deviation; it ignores model error (light outside the basis counts as noise).
 use super::compact::{BasisExtent, Compact, Extent, FineFields};
-use super::objective::{Objective, Reduced};
+use super::objective::Objective;
 use super::optimise::{
     golden_section, gradient, gradient_hessian, nelder_mead, scan, Bounds, NmOptions,
 };
@@ -203,20 +203,18 @@ where
     let a_um = ctx.core_radius_um;
     let defocus_range = spec.defocus_range_um.unwrap_or(4.0 * dof);
     let fine = FineFields::new(fields.view(), grid);
-    let bext = {
+    let (bext, rank) = {
         let b = sampler(grid, &super::objective::geometry(start));
-        BasisExtent::new(b.view(), grid, start.center_um)
-    };
-    let rank = {
-        let g = Grid::centred(2, 2, grid.pitch_um);
-        sampler(&g, &super::objective::geometry(start)).dim().0 + spec.rank_extra
+        (
+            BasisExtent::new(b.view(), grid, start.center_um),
+            b.dim().0 + spec.rank_extra,
+        )
     };
     // Fields on a compact grid, reduced to principal components; the denominator stays the
     // decoding grid's power.
     let build = |ext: &Extent| {
         let c = Compact::new(&fine, &bext, ext);
-        let mut r = Reduced::new(c.fields.view(), &c.grid, ctx.wavelength_nm, rank);
-        r.total = c.total_power();
+        let r = c.reduce(ctx.wavelength_nm, rank);
         (c, r)
     };
     let used = std::sync::atomic::AtomicUsize::new(0);

@@ -5,7 +5,7 @@
 //! Contract: pure functions of their inputs, no I/O; spectra are in FFT bin order
 //! (bin 0 = DC) with frequencies in cycles per pixel (docs/conventions.md).
 use super::compact::{BasisExtent, Compact, Extent, FineFields};
-use super::objective::{freq, geometry, Objective, Reduced};
+use super::objective::{freq, geometry, Objective};
 use super::optimise::{golden_section, scan};
 use crate::grid::{Alignment, Grid};
 use ndarray::{Array3, ArrayView2, ArrayView3};
@@ -138,8 +138,7 @@ where
             tail: 1e-5,
         },
     );
-    let mut red = Reduced::new(c.fields.view(), &c.grid, wavelength_nm, rank);
-    red.total = c.total_power();
+    let red = c.reduce(wavelength_nm, rank);
     let obj = Objective::new(&red, sampler);
     let f = |z: f64| {
         -obj.captured(&Alignment {
