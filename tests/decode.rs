@@ -887,7 +887,7 @@ fn no_sideband_says_where_it_searched() {
     assert!(
         m.contains("n.tif")
             && m.contains("no sideband found")
-            && m.contains("strongest peak")
+            && m.contains("strongest blob")
             && m.contains("0.05"),
         "{m}"
     );

@@ -125,6 +125,9 @@ fn table(d: &Decoded) -> String {
                     "({:.4}, {:.4}) {}",
                     ch.carrier_cycles_per_px[0], ch.carrier_cycles_per_px[1], ch.carrier_source
                 ),
+                ch.carrier_uncertainty_cycles_per_px
+                    .map_or("-".into(), |u| format!("({:.1e}, {:.1e})", u[0], u[1])),
+                ch.carrier_side.clone(),
                 format!("{:.4}", ch.window_radius_cycles_per_px),
                 format!("{:.4}", ch.separation_margin_cycles_per_px),
                 format!("{}x{} @ {:.3}", ch.nx, ch.ny, ch.pitch_um),
@@ -137,6 +140,8 @@ fn table(d: &Decoded) -> String {
         &[
             "channel",
             "carrier [cycles/px]",
+            "carrier 1-sigma",
+            "side",
             "window [cycles/px]",
             "margin [cycles/px]",
             "grid [px @ um]",

@@ -25,6 +25,7 @@ use std::path::PathBuf;
 pub mod carrier;
 pub mod plan;
 mod prepare;
+pub mod refine;
 pub mod window;
 
 pub use plan::{DecodePlan, PlanSpec, RefAmplitude, Scratch};
@@ -33,19 +34,24 @@ pub use prepare::{choose_grid, fibre_bandwidth_cycles_per_px, lowpass_to_grid, p
 /// Frames projected together (at most; a multiple of the batch).
 pub const PROJECT_FRAMES: usize = 32;
 
-/// Peak-to-median ratio of the mean |spectrum| below which no sideband is taken as found.
-pub const MIN_SIDEBAND_CONTRAST: f64 = 8.0;
-
 /// What was decided for one channel (written to decode.json).
 #[derive(Debug, Clone, Serialize)]
 pub struct ChannelPlanInfo {
     pub name: String,
     pub region: [usize; 4],
     pub carrier_cycles_per_px: [f64; 2],
-    /// "auto" (found in the frames) or "setup".
+    /// "auto" (found in the frames), "auto, basis-refined", "setup" or "calibrated".
     pub carrier_source: String,
-    /// Peak over median of the mean |spectrum| (auto carrier only).
+    /// Sideband power over the noise floor of the mean power spectrum (auto carrier only).
     pub carrier_contrast: Option<f64>,
+    /// One-sigma uncertainty of the automatic carrier, per axis, cycles/px.
+    pub carrier_uncertainty_cycles_per_px: Option<[f64; 2]>,
+    /// Centre of the mean sideband power before any basis refinement, cycles/px.
+    pub carrier_centroid_cycles_per_px: Option<[f64; 2]>,
+    /// Shift of the carrier by the basis refinement, in FFT bins of the region.
+    pub carrier_basis_shift_bins: Option<f64>,
+    /// Which order is decoded: "fx > 0 (default)" or "fx < 0 (conjugate)".
+    pub carrier_side: String,
     pub fringe_period_px: f64,
     pub window_radius_cycles_per_px: f64,
     /// Expected fibre output bandwidth NA / (M lambda) * pixel pitch, when NA is known.
@@ -86,6 +92,9 @@ pub struct DecodeOptions {
     pub alignments: Option<Vec<Alignment>>,
     /// Frames decoded per batch (0: four per thread).
     pub batch_frames: usize,
+    /// Per-channel carriers (cycles/px) replacing the setup's or the automatic search
+    /// (e.g. the carrier with a fitted tilt folded in); `None` entries keep the setup's.
+    pub carriers: Option<Vec<Option<[f64; 2]>>>,
 }
 
 /// Plans and what was decided for them.
@@ -97,6 +106,8 @@ pub struct Prepared {
     pub saturation_counts: Option<f64>,
     /// Frame count of the stack when known up front.
     pub frame_count: Option<usize>,
+    /// The first frames of the stack (decode.carrier_frames), as read for the carrier search.
+    pub carrier_frames: Vec<Vec<f32>>,
 }
 
 /// Result of decoding a stack.
@@ -129,9 +140,49 @@ pub fn decode_stack(
     opts: &DecodeOptions,
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Decoded> {
-    let prepared = prepare(setup, frames, opts)?;
+    let mut prepared = prepare(setup, frames, opts)?;
     let projectors = projectors(&prepared, basis)?;
+    refine_auto_carriers(&mut prepared, &projectors);
     decode_prepared(&prepared, &projectors, frames, opts, progress)
+}
+
+/// Refine every automatic carrier with the channel's basis ([`refine`]); `projectors` empty:
+/// nothing to do. Plans are rebuilt at the refined carriers; a refinement that is refused
+/// keeps the centroid and adds a warning.
+pub fn refine_auto_carriers(p: &mut Prepared, projectors: &[Projector]) {
+    if projectors.len() != p.plans.len() {
+        return;
+    }
+    for (i, q) in projectors.iter().enumerate() {
+        if p.channels[i].carrier_source != "auto" {
+            continue;
+        }
+        match refine::refine(&p.plans[i], q, &p.carrier_frames) {
+            Ok(r) => {
+                let mut spec = p.plans[i].spec.clone();
+                spec.carrier_cycles_per_px = r.carrier;
+                p.plans[i] = DecodePlan::build(spec);
+                let info = &mut p.channels[i];
+                info.carrier_cycles_per_px = r.carrier;
+                info.fringe_period_px = 1.0 / r.carrier[0].hypot(r.carrier[1]);
+                info.carrier_source = "auto, basis-refined".into();
+                info.carrier_basis_shift_bins = Some(r.shift_bins);
+                if r.uncertainty.iter().all(|u| u.is_finite()) {
+                    info.carrier_uncertainty_cycles_per_px = Some(r.uncertainty);
+                }
+            }
+            Err(refine::NotRefined::TooFar(s)) => p.warnings.push(format!(
+                "channel {}: the basis puts the carrier ({:+.2}, {:+.2}) FFT bins from the \
+                 sideband's centre, more than {} bins: kept the centre; check the basis \
+                 (fibre, magnification, centre) or give `carrier`",
+                p.channels[i].name,
+                s[0],
+                s[1],
+                refine::MAX_SHIFT_BINS
+            )),
+            Err(refine::NotRefined::NoSignal) => {}
+        }
+    }
 }
 
 /// Sample the basis for every channel at its grid and alignment.

@@ -9,7 +9,7 @@
 //! over the carrier-search frames is used for every frame, so frames stay comparable.
 use super::{
     background_file, carrier, window, ChannelPlanInfo, DecodeOptions, DecodePlan, PlanSpec,
-    Prepared, RefAmplitude, MIN_SIDEBAND_CONTRAST,
+    Prepared, RefAmplitude,
 };
 use crate::error::{Error, Result};
 use crate::frames::FrameStack;
@@ -132,6 +132,63 @@ fn region_of(full: &[f64], fw: usize, r: [usize; 4]) -> Vec<f64> {
         .collect()
 }
 
+/// Which twin the channel takes, as written in decode.json and the tables.
+pub fn side_text(conjugate: bool) -> &'static str {
+    if conjugate {
+        carrier::Side::Conjugate.as_str()
+    } else {
+        carrier::Side::Default.as_str()
+    }
+}
+
+/// The error text of a failed automatic carrier search: where it searched, what it found,
+/// how to choose.
+fn carrier_problem_message(
+    name: &str,
+    region: [usize; 4],
+    s: &carrier::SearchSpec,
+    frames: usize,
+    p: &carrier::Problem,
+) -> String {
+    let wher = format!(
+        "searched the mean power spectrum of frames 0..{frames} in region {region:?} outside \
+         |f| < {} cycles/px (decode.dc_exclusion)",
+        s.dc_exclusion
+    );
+    match p {
+        carrier::Problem::Flat => format!(
+            "channel {name}: no sideband found: {wher}; the region holds no power after the \
+             background subtraction (a dark or reference-only frame in the stack?)"
+        ),
+        carrier::Problem::NoSideband {
+            strongest,
+            contrast,
+        } => format!(
+            "channel {name}: no sideband found: {wher}; the strongest blob, at ({:.4}, {:.4}) \
+             cycles/px, holds only {contrast:.2} x the noise floor (need {}): is the \
+             reference beam blocked, or the fibre output off the region?",
+            strongest[0],
+            strongest[1],
+            carrier::MIN_CONTRAST
+        ),
+        carrier::Problem::TwoSidebands {
+            first,
+            second,
+            ratio,
+        } => format!(
+            "channel {name}: two sidebands of similar strength: at ({:.4}, {:.4}) and \
+             ({:.4}, {:.4}) cycles/px (the second {:.0} % of the first; {wher}): two \
+             references reach this region; give each channel its `carrier` (and use \
+             `conjugate` to take the mirrored order)",
+            first[0],
+            first[1],
+            second[0],
+            second[1],
+            100.0 * ratio
+        ),
+    }
+}
+
 /// Build the plans for every channel of `setup` for the frames in `frames`.
 pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Result<Prepared> {
     let f = setup.file_name();
@@ -205,36 +262,31 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
         };
         let background: Vec<f32> = bg64.iter().map(|&v| v as f32).collect();
         // Carrier
-        let (c, source, contrast) = match ch.carrier_cycles_per_px() {
-            Some(c) => (c, "setup", None),
-            None => {
+        let override_c = opts
+            .carriers
+            .as_ref()
+            .and_then(|v| v.get(i).copied().flatten());
+        let mut estimate = None;
+        let (c, source) = match (override_c, ch.carrier_cycles_per_px()) {
+            (Some(c), _) => (c, "calibrated"),
+            (None, Some(c)) => (c, "setup"),
+            (None, None) => {
                 let spec = carrier::MeanSpectrum::compute(&cf, fw, ch.region, &background);
-                let pk = carrier::find_peak(&spec, setup.decode.dc_exclusion, ch.conjugate);
-                if pk.contrast < MIN_SIDEBAND_CONTRAST {
-                    return Err(Error::frame(
+                let search = carrier::SearchSpec {
+                    dc_exclusion: setup.decode.dc_exclusion,
+                    conjugate: ch.conjugate,
+                    fill_factor: setup.camera.fill_factor,
+                    band: fibre_bandwidth_cycles_per_px(setup, ch),
+                };
+                let e = carrier::estimate(&spec, &search).map_err(|p| {
+                    Error::frame(
                         &frames[0],
                         None,
-                        format!(
-                            "channel {}: no sideband found: searched |f| >= {} cycles/px \
-                             (decode.dc_exclusion), half-plane fx > 0, of the mean |spectrum| \
-                             of frames 0..{} in region {:?}; the strongest peak, at \
-                             ({:.4}, {:.4}) cycles/px, is only {:.1} x the median (need {})",
-                            ch.name,
-                            setup.decode.dc_exclusion,
-                            cf.len(),
-                            ch.region,
-                            pk.carrier[0].abs(),
-                            if ch.conjugate {
-                                -pk.carrier[1]
-                            } else {
-                                pk.carrier[1]
-                            },
-                            pk.contrast,
-                            MIN_SIDEBAND_CONTRAST
-                        ),
-                    ));
-                }
-                (pk.carrier, "auto", Some(pk.contrast))
+                        carrier_problem_message(&ch.name, ch.region, &search, cf.len(), &p),
+                    )
+                })?;
+                estimate = Some(e);
+                (e.carrier, "auto")
             }
         };
         let cabs = c[0].hypot(c[1]);
@@ -363,7 +415,11 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
             region: ch.region,
             carrier_cycles_per_px: c,
             carrier_source: source.into(),
-            carrier_contrast: contrast,
+            carrier_contrast: estimate.map(|e| e.contrast),
+            carrier_uncertainty_cycles_per_px: estimate.map(|e| e.uncertainty),
+            carrier_centroid_cycles_per_px: estimate.map(|e| e.carrier),
+            carrier_basis_shift_bins: None,
+            carrier_side: side_text(ch.conjugate).into(),
             fringe_period_px: period,
             window_radius_cycles_per_px: radius,
             fibre_bandwidth_cycles_per_px: band,
@@ -385,6 +441,7 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
         warnings,
         saturation_counts,
         frame_count: stack.len(),
+        carrier_frames,
     })
 }
 
