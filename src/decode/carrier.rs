@@ -315,7 +315,7 @@ impl Map {
                 rows.push((wt, f));
             }
         }
-        if !(s > 0.0) {
+        if s.is_nan() || s <= 0.0 {
             return None;
         }
         let m = [sx / s, sy / s];

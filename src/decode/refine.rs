@@ -96,13 +96,11 @@ pub fn refine(
             .map(|&x| Complex64::from_polar(1.0, -2.0 * PI * k[0] * x))
             .collect();
         for f in &fields {
-            for iy in 0..g.ny {
-                let y = ys[iy];
+            for (iy, &y) in ys.iter().enumerate() {
                 let py = Complex64::from_polar(1.0, -2.0 * PI * k[1] * y);
-                for ix in 0..g.nx {
+                for (ix, (&x, &pxv)) in xs.iter().zip(&px).enumerate() {
                     let i = iy * g.nx + ix;
-                    let x = xs[ix];
-                    let v = f[i] * px[ix] * py;
+                    let v = f[i] * pxv * py;
                     rows[[0, i]] = v;
                     rows[[1, i]] = v * x;
                     rows[[2, i]] = v * y;
@@ -182,7 +180,7 @@ pub fn refine(
     if shift[0].abs() > MAX_SHIFT_BINS || shift[1].abs() > MAX_SHIFT_BINS {
         return Err(NotRefined::TooFar(shift));
     }
-    if !(cur.g > 0.0) {
+    if cur.g.is_nan() || cur.g <= 0.0 {
         return Err(NotRefined::NoSignal);
     }
     // Noise level per pixel (times dA) from the power left over.
