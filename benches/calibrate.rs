@@ -174,6 +174,7 @@ fn main() {
         center_margin_um: 2.5,
         defocus_margin_um: 1.064 / 0.04,
         tail: 1e-5,
+        tilt_margin_cycles_per_um: 0.0,
     };
     let compact = Compact::new(&fine, &bext, &ext);
     let cg = compact.grid;

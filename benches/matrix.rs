@@ -93,14 +93,15 @@ fn demo(cr: &mut Criterion) {
     grp.bench_function("baseline_decode_only", |b| {
         b.iter(|| {
             black_box(
-                modegram::pipeline::decode_sequence(&setup, &basis, None, false, &|_| {}).unwrap(),
+                modegram::pipeline::decode_sequence(&setup, &basis, None, None, false, &|_| {})
+                    .unwrap(),
             )
         })
     });
     grp.bench_function("decode_to_summary", |b| {
         b.iter(|| {
-            let d =
-                modegram::pipeline::decode_sequence(&setup, &basis, None, false, &|_| {}).unwrap();
+            let d = modegram::pipeline::decode_sequence(&setup, &basis, None, None, false, &|_| {})
+                .unwrap();
             black_box(modegram::pipeline::analyse_sequence(&setup, &basis, &d).unwrap())
         })
     });

@@ -48,11 +48,13 @@ pub fn stack_path(setup: &Setup) -> Result<PathBuf> {
 }
 
 /// Decode the setup's launch sequence with the basis projected at each channel's alignment
-/// (`alignments` replaces the setup's, e.g. with fitted values).
+/// (`alignments` replaces the setup's, e.g. with fitted values; `carriers` the setup's or
+/// automatic carriers, e.g. with a fitted tilt folded in).
 pub fn decode_sequence(
     setup: &Setup,
     basis: &Basis,
     alignments: Option<Vec<Alignment>>,
+    carriers: Option<Vec<Option<[f64; 2]>>>,
     keep_fields: bool,
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Decoded> {
@@ -61,6 +63,7 @@ pub fn decode_sequence(
         keep_fields,
         strict: setup.decode.strict,
         alignments,
+        carriers,
         ..Default::default()
     };
     let s = sampler(basis);

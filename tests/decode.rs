@@ -932,6 +932,90 @@ fn sideband_overlapping_dc_warns_or_fails_when_strict() {
     assert!(prepare(&setup, &[stack], &DecodeOptions::default()).is_err());
 }
 
+/// Two references of similar strength reaching one region (carrier = "auto"): the error
+/// names both sideband positions and how to choose; `decode` writes nothing
+/// (common practice, no source: an ambiguous carrier must not be guessed).
+#[test]
+fn two_sidebands_in_one_auto_region_are_refused_with_both_positions() {
+    let d = tempfile::tempdir().unwrap();
+    let n = 128;
+    let b1 = Beam {
+        w0: 3.0,
+        d: [0.5, 0.0],
+        tilt_mrad: [0.0, 0.0],
+        amp: 700.0,
+    };
+    let b2 = Beam {
+        w0: 3.0,
+        d: [-0.5, 0.5],
+        tilt_mrad: [0.0, 0.0],
+        amp: 600.0,
+    };
+    let h1 = hologram(
+        n,
+        n,
+        [0, 0, n, n],
+        &|x, y| b1.camera(x, y),
+        [0.3, 0.05],
+        8000.0,
+    );
+    let h2 = hologram(
+        n,
+        n,
+        [0, 0, n, n],
+        &|x, y| b2.camera(x, y),
+        [0.05, 0.3],
+        8000.0,
+    );
+    let h: Vec<f64> = h1.iter().zip(&h2).map(|(a, b)| a + b).collect();
+    let stack = write_frames(d.path(), "two.tif", n, n, &[h]);
+    let setup = load(d.path(), &setup_text([0, 0, n, n], "", ""));
+    let (m, code) = err_text(prepare(
+        &setup,
+        std::slice::from_ref(&stack),
+        &DecodeOptions::default(),
+    ));
+    assert!(
+        m.contains("two sidebands") && m.contains("`carrier`") && m.contains("`conjugate`"),
+        "{m}"
+    );
+    // Both positions named, each within one FFT bin (1/128 cycles/px).
+    let pairs: Vec<[f64; 2]> = m
+        .split('(')
+        .skip(1)
+        .filter_map(|t| {
+            let (a, rest) = t.split_once(", ")?;
+            let (b, _) = rest.split_once(')')?;
+            Some([a.parse().ok()?, b.parse().ok()?])
+        })
+        .collect();
+    for want in [[0.3, 0.05], [0.05, 0.3]] {
+        assert!(
+            pairs
+                .iter()
+                .any(|p| (p[0] - want[0]).abs() < 1.0 / 128.0
+                    && (p[1] - want[1]).abs() < 1.0 / 128.0),
+            "{want:?} not in {pairs:?}: {m}"
+        );
+    }
+    assert_eq!(code, 2);
+    let out = d.path().join("out");
+    let o = assert_cmd::Command::cargo_bin("modegram")
+        .unwrap()
+        .arg("decode")
+        .arg(d.path().join("setup.toml"))
+        .arg(&stack)
+        .arg("--out")
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    let written: Vec<_> = std::fs::read_dir(&out)
+        .map(|r| r.filter_map(|e| e.ok()).map(|e| e.file_name()).collect())
+        .unwrap_or_default();
+    assert!(written.is_empty(), "partial output: {written:?}");
+}
+
 /// Two carriers in one region (angle multiplexing) give two channels with their own fields.
 #[test]
 fn two_carriers_in_one_region_are_two_channels() {

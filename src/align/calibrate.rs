@@ -156,16 +156,70 @@ pub fn calibrate(
     Ok(out)
 }
 
+/// What to decode with after a fit: per channel the alignment and, for a channel whose
+/// carrier is automatic, the physical carrier with the fitted tilt folded back in.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Decoding {
+    pub alignment: Alignment,
+    /// Some: the carrier (cycles/px) to decode with in place of the automatic search.
+    pub carrier_cycles_per_px: Option<[f64; 2]>,
+    /// The tilt moved into the carrier, cycles/px (zero when nothing was folded).
+    pub folded_cycles_per_px: [f64; 2],
+}
+
+/// Fold each automatic-carrier channel's fitted tilt back into its carrier.
+///
+/// A residual carrier error `dc` (cycles/px) and a field tilt are the same thing: the
+/// decoded field carries `exp(+i 2 pi dc . r)`, r in camera pixels, which is the tilt phase
+/// `exp(+i k t . x)` with `x = r * pitch` (fibre-plane pitch of the channel) when
+/// `dc = t * pitch / lambda` (docs/conventions.md). So the fitted tilt beyond the setup's is
+/// moved into the carrier, `c' = c + (t_fit - t_setup) pitch / lambda`, and the setup's tilt
+/// kept: the recorded carrier is then where the sideband physically sits, and the setup
+/// works for any other frames of the same bench. Channels with a given carrier keep it and
+/// the fitted tilt. `used` holds the carriers the fields were decoded with.
+pub fn fold_tilt(setup: &Setup, used: &[[f64; 2]], fits: &[ChannelFit]) -> Vec<Decoding> {
+    let wl_um = setup.light.wavelength_nm * 1e-3;
+    setup
+        .channels
+        .iter()
+        .zip(used)
+        .zip(fits)
+        .map(|((ch, c), f)| {
+            let a = f.fitted;
+            if ch.carrier_cycles_per_px().is_some() || !f.converged {
+                return Decoding {
+                    alignment: a,
+                    carrier_cycles_per_px: None,
+                    folded_cycles_per_px: [0.0; 2],
+                };
+            }
+            let pitch = ch.fibre_pitch_um(&setup.camera);
+            let t0 = ch.tilt_mrad;
+            let d = [
+                (a.tilt_mrad[0] - t0[0]) * 1e-3 * pitch / wl_um,
+                (a.tilt_mrad[1] - t0[1]) * 1e-3 * pitch / wl_um,
+            ];
+            Decoding {
+                alignment: Alignment { tilt_mrad: t0, ..a },
+                carrier_cycles_per_px: Some([c[0] + d[0], c[1] + d[1]]),
+                folded_cycles_per_px: d,
+            }
+        })
+        .collect()
+}
+
 /// The calibration.json value: `{name: {center_um, rotation_deg, tilt_mrad, defocus_um,
 /// scale, captured_before, captured_after, uncertainty, ...}}`.
 pub fn calibration_json(
     setup: &Setup,
     fits: &[ChannelFit],
+    decoding: &[Decoding],
+    used: &[[f64; 2]],
     frames_used: usize,
 ) -> serde_json::Value {
     let mut m = serde_json::Map::new();
-    for (ch, f) in setup.channels.iter().zip(fits) {
-        let a = &f.fitted;
+    for (((ch, f), d), c) in setup.channels.iter().zip(fits).zip(decoding).zip(used) {
+        let a = &d.alignment;
         m.insert(
             ch.name.clone(),
             json!({
@@ -182,6 +236,20 @@ pub fn calibration_json(
                 "converged": f.converged,
                 "message": f.message,
                 "rotation_fitted": f.rotation_fitted,
+                "parameters": f.decisions,
+                "fitted_tilt_mrad": f.fitted.tilt_mrad,
+                "carrier": {
+                    "decoded_with_cycles_per_px": c,
+                    "recorded_cycles_per_px": d.carrier_cycles_per_px.unwrap_or(*c),
+                    "tilt_folded_cycles_per_px": d.folded_cycles_per_px,
+                    "source": if d.carrier_cycles_per_px.is_some() {
+                        "automatic, fitted tilt folded in"
+                    } else if ch.carrier_cycles_per_px().is_some() {
+                        "given (the fitted tilt stays in tilt_mrad)"
+                    } else {
+                        "automatic (fit did not converge: not refined)"
+                    },
+                },
                 "start": {
                     "center_um": f.start.center_um,
                     "rotation_deg": f.start.rotation_deg,
@@ -223,7 +291,9 @@ fn absolute(setup_dir: &Path, p: &str) -> String {
 
 /// The setup text with the fitted alignment of each channel written in and every path made
 /// absolute (resolved against the setup's folder). Other keys are kept.
-pub fn fitted_toml(setup: &Setup, text: &str, fits: &[ChannelFit]) -> Result<String> {
+/// `decoding` (from [`fold_tilt`]) gives each channel's values; a folded carrier is written
+/// as a number.
+pub fn fitted_toml(setup: &Setup, text: &str, decoding: &[Decoding]) -> Result<String> {
     let mut doc: toml::Table = text.parse().map_err(|e: toml::de::Error| Error::Parse {
         file: setup.file_name(),
         message: e.to_string(),
@@ -255,7 +325,7 @@ pub fn fitted_toml(setup: &Setup, text: &str, fits: &[ChannelFit]) -> Result<Str
             let Some(i) = setup.channels.iter().position(|c| &c.name == name) else {
                 continue;
             };
-            let a = fits[i].fitted;
+            let a = decoding[i].alignment;
             let arr = |v: [f64; 2]| {
                 toml::Value::Array(vec![toml::Value::Float(v[0]), toml::Value::Float(v[1])])
             };
@@ -264,6 +334,11 @@ pub fn fitted_toml(setup: &Setup, text: &str, fits: &[ChannelFit]) -> Result<Str
             t.insert("scale".into(), toml::Value::Float(a.scale));
             t.insert("tilt_mrad".into(), arr(a.tilt_mrad));
             t.insert("defocus_um".into(), toml::Value::Float(a.defocus_um));
+            if let Some(c) = decoding[i].carrier_cycles_per_px {
+                t.insert("carrier".into(), arr(c));
+                t.remove("carrier_period_px");
+                t.remove("carrier_angle_deg");
+            }
         }
     }
     toml::to_string_pretty(&doc)
@@ -331,13 +406,37 @@ carrier = [0.25, 0.1]
             rotation_fitted: false,
             message: String::new(),
             retained_fraction: 1.0,
+            decisions: Vec::new(),
         };
-        let out = fitted_toml(&setup, text, &[fit]).unwrap();
+        let dec = fold_tilt(&setup, &[[0.25, 0.1]], std::slice::from_ref(&fit));
+        assert_eq!(
+            dec[0].carrier_cycles_per_px, None,
+            "a given carrier is kept"
+        );
+        let out = fitted_toml(&setup, text, &dec).unwrap();
         let other = tempfile::tempdir().unwrap();
         let s2 = Setup::from_toml(&out, &other.path().join("fitted.toml")).unwrap();
         assert_eq!(s2.channels[0].alignment(), fitted);
         assert_eq!(s2.channels[0].carrier_cycles_per_px(), Some([0.25, 0.1]));
         let stack = s2.resolve(s2.frames.stack.as_ref().unwrap());
         assert!(stack.is_absolute() && stack.exists(), "{}", stack.display());
+
+        // Automatic carrier: the fitted tilt goes into the carrier, the setup's tilt stays.
+        // 0.5 mrad at 1.064 um over a 5.5 / 20 = 0.275 um pitch: 0.5e-3 * 0.275 / 1.064
+        // cycles/px (docs/conventions.md, tilt phase and carrier sign).
+        let auto = text.replace("carrier = [0.25, 0.1]", "carrier = \"auto\"");
+        let setup = Setup::from_toml(&auto, &path).unwrap();
+        let dec = fold_tilt(&setup, &[[0.25, 0.1]], &[fit]);
+        let c = dec[0].carrier_cycles_per_px.expect("folded");
+        let want = [0.25 + 0.5e-3 * 0.275 / 1.064, 0.1 - 0.25e-3 * 0.275 / 1.064];
+        assert!(
+            (c[0] - want[0]).abs() < 1e-12 && (c[1] - want[1]).abs() < 1e-12,
+            "{c:?}"
+        );
+        assert_eq!(dec[0].alignment.tilt_mrad, [0.0, 0.0]);
+        let out = fitted_toml(&setup, &auto, &dec).unwrap();
+        let s3 = Setup::from_toml(&out, &other.path().join("fitted.toml")).unwrap();
+        assert_eq!(s3.channels[0].carrier_cycles_per_px(), Some(c));
+        assert_eq!(s3.channels[0].alignment().center_um, fitted.center_um);
     }
 }

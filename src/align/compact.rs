@@ -22,9 +22,10 @@
 //! basis power spectrum and `r_m(tail)` the radius around the basis centre holding all but
 //! `tail` of its power ([`BasisExtent`]); modes near cut-off have long evanescent tails, so
 //! the tail sets the trade between size and fidelity (the fit searches on a loose grid
-//! and refines on a tight one). The band is `f_B = 1.3 f_m + |f_t|`, with `f_t` the fields'
-//! spectral centroid (a residual tilt t moves the spectrum by t / lambda,
-//! docs/conventions.md): room for a 20 % scale change and for the tilt search. The grid
+//! and refines on a tight one). The band is `f_B = 1.3 f_m + |f_t| + f_s`, with `f_t` the
+//! fields' spectral centroid (a residual tilt t moves the spectrum by t / lambda,
+//! docs/conventions.md) and `f_s` the caller's room for the tilt search: room for a 20 %
+//! scale change and for a carrier that is a few FFT bins off. The grid
 //! covers the disk of radius `r_m + margin + max |c - c_0| + (max |dz| + dz_margin) lambda f_B`
 //! around its centre `c_0`, the maxima over the alignments it must hold: room for the
 //! centre search and for the spreading of the defocused modes.
@@ -50,6 +51,8 @@ pub struct Extent {
     pub defocus_margin_um: f64,
     /// Part of the basis power allowed outside the band and outside the grid.
     pub tail: f64,
+    /// Extra band for the tilt search beyond the fields' spectral centroid, cycles/um.
+    pub tilt_margin_cycles_per_um: f64,
 }
 
 /// The decoded fields' spectra and power figures, computed once per channel.
@@ -264,7 +267,7 @@ impl Compact {
             .spectral_centroid
             .map(|f| f[0].abs().max(f[1].abs()))
             .unwrap_or(0.0);
-        let f_b = (1.3 * f_m + ft_abs).min(f_nyq);
+        let f_b = (1.3 * f_m + ft_abs + ext.tilt_margin_cycles_per_um.max(0.0)).min(f_nyq);
         let pitch_um = if f_b >= f_nyq || f_b <= 0.0 {
             grid.pitch_um
         } else {
@@ -462,6 +465,7 @@ mod tests {
             center_margin_um: 1.2,
             defocus_margin_um: 20.0,
             tail: 1e-8,
+            tilt_margin_cycles_per_um: 0.0,
         };
         let fine = FineFields::new(fields.view(), &grid);
         let c = Compact::new(

@@ -60,6 +60,12 @@ pub struct FitSpec {
     pub rank_extra: usize,
     /// Half-width of the coarse defocus scan, micrometres; None: 4 lambda / NA^2.
     pub defocus_range_um: Option<f64>,
+    /// Half-width of the coarse tilt scan around the best start, FFT bins of the decoding
+    /// grid (a carrier this far off is still found).
+    pub tilt_search_bins: f64,
+    /// Keep rotation (when not forced) and scale at their nominal values unless fitting them
+    /// gains significantly (see [`SIGNIFICANCE_CHI2`], [`MIN_GAIN`]).
+    pub significance: bool,
     pub nm: NmOptions,
 }
 
@@ -73,6 +79,8 @@ impl Default for FitSpec {
             defocus: true,
             rank_extra: 10,
             defocus_range_um: None,
+            tilt_search_bins: 3.5,
+            significance: true,
             nm: NmOptions {
                 ftol: 1e-6,
                 xtol: 0.05,
@@ -81,6 +89,29 @@ impl Default for FitSpec {
             },
         }
     }
+}
+
+/// Likelihood-ratio threshold for keeping an optional parameter: the 0.999 quantile of the
+/// chi-square distribution with one degree of freedom (Abramowitz & Stegun, Handbook of
+/// Mathematical Functions, table 26.8: 10.828).
+pub const SIGNIFICANCE_CHI2: f64 = 10.828;
+/// Smallest gain in captured fraction for which an optional parameter is kept: with
+/// millions of pixels any model mismatch is "significant", so the gain must also matter
+/// (a 1e-4 change of captured power moves insertion loss by 4e-4 dB).
+pub const MIN_GAIN: f64 = 1e-4;
+
+/// Whether a parameter was fitted, and why.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Decision {
+    pub parameter: &'static str,
+    pub fitted: bool,
+    pub reason: String,
+    /// Likelihood-ratio statistic of fitting it against keeping it nominal (rotation, scale).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub statistic: Option<f64>,
+    /// Captured fraction it gains (quadratic model at the fit).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub gain: Option<f64>,
 }
 
 /// Physical context of a channel.
@@ -129,6 +160,8 @@ pub struct ChannelFit {
     pub message: String,
     /// Part of the fields' power in the kept principal components.
     pub retained_fraction: f64,
+    /// Per parameter group: fitted or held, and why.
+    pub decisions: Vec<Decision>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -229,6 +262,18 @@ where
         P::Dz => 0.2 * dof,
     };
 
+    // One FFT bin of the decoding grid as a tilt, mrad, per axis.
+    let bin_mrad = [
+        1e3 * wl_um / (grid.nx as f64 * grid.pitch_um),
+        1e3 * wl_um / (grid.ny as f64 * grid.pitch_um),
+    ];
+    let bin_cycles_per_um = (1.0 / (grid.nx.min(grid.ny) as f64 * grid.pitch_um)).max(0.0);
+    let tilt_margin = if spec.tilt {
+        (spec.tilt_search_bins.max(0.0) + 0.5) * bin_cycles_per_um
+    } else {
+        0.0
+    };
+
     // Stages 1 and 2 on a loose grid that holds the start and the whole defocus scan.
     let mut best = *start;
     let rotation_fitted;
@@ -240,6 +285,7 @@ where
             center_margin_um: 0.3 * a_um,
             defocus_margin_um: defocus_range,
             tail: SEARCH_TAIL,
+            tilt_margin_cycles_per_um: tilt_margin,
         });
         let obj = Objective::new(&red, &sampler);
         let eta = |a: &Alignment| {
@@ -279,6 +325,32 @@ where
             if v > best_eta {
                 best = c;
                 best_eta = v;
+            }
+        }
+        // Coarse tilt scan: a carrier k bins off is a tilt of k bins; whole-bin steps over
+        // the search half-width (the captured power of a pattern smaller than the grid
+        // varies over more than a bin of tilt), the simplex finishes.
+        if spec.tilt {
+            let k = spec.tilt_search_bins.max(0.0).floor() as i32;
+            let base = best;
+            for i in -k..=k {
+                for j in -k..=k {
+                    if i == 0 && j == 0 {
+                        continue;
+                    }
+                    let a = Alignment {
+                        tilt_mrad: [
+                            base.tilt_mrad[0] + i as f64 * bin_mrad[0],
+                            base.tilt_mrad[1] + j as f64 * bin_mrad[1],
+                        ],
+                        ..base
+                    };
+                    let v = eta(&a);
+                    if v > best_eta {
+                        best = a;
+                        best_eta = v;
+                    }
+                }
             }
         }
 
@@ -329,6 +401,69 @@ where
         };
     }
 
+    let held = |what: &str| format!("held at the setup's value ({what})");
+    let mut decisions = vec![
+        Decision {
+            parameter: "center_um",
+            fitted: spec.center,
+            reason: if spec.center {
+                "fitted".into()
+            } else {
+                held("not requested")
+            },
+            statistic: None,
+            gain: None,
+        },
+        Decision {
+            parameter: "rotation_deg",
+            fitted: rotation_fitted,
+            reason: match spec.rotation {
+                Some(true) => "fitted (requested)".into(),
+                Some(false) => held("not requested"),
+                None if rotation_fitted => "fitted".into(),
+                None => held(
+                    "not observable: the basis holds complete degenerate groups, whose \
+                     captured power does not depend on rotation",
+                ),
+            },
+            statistic: None,
+            gain: None,
+        },
+        Decision {
+            parameter: "scale",
+            fitted: spec.scale,
+            reason: if spec.scale {
+                "fitted".into()
+            } else {
+                held("not requested")
+            },
+            statistic: None,
+            gain: None,
+        },
+        Decision {
+            parameter: "tilt_mrad",
+            fitted: spec.tilt,
+            reason: if spec.tilt {
+                "fitted".into()
+            } else {
+                held("not requested")
+            },
+            statistic: None,
+            gain: None,
+        },
+        Decision {
+            parameter: "defocus_um",
+            fitted: spec.defocus,
+            reason: if spec.defocus {
+                "fitted".into()
+            } else {
+                held("not requested")
+            },
+            statistic: None,
+            gain: None,
+        },
+    ];
+
     let mut free = Vec::new();
     if spec.center {
         free.extend([P::Cx, P::Cy]);
@@ -345,19 +480,33 @@ where
     if spec.defocus {
         free.push(P::Dz);
     }
-    let n = free.len();
+    // Parameters the significance test may drop.
+    let optional: Vec<P> = free
+        .iter()
+        .copied()
+        .filter(|&p| (p == P::Rot && spec.rotation.is_none()) || p == P::Scale)
+        .collect();
 
     // Stages 3 and 4 on a tight grid around the best candidate; rebuilt once around the
-    // result when the search left the part of the grid that holds the modes.
-    let mut round = 0;
+    // result when the search left the part of the grid that holds the modes, once wider
+    // when it ended on a bound, and once without the parameters that did not earn their
+    // place.
+    let mut recentred = false;
+    let mut widened = false;
+    let mut tested = !spec.significance;
+    let mut center_margin = 0.1 * a_um;
+    let mut tilt_room = tilt_margin;
+    let mut dz_room = 20.0;
     loop {
+        let n = free.len();
         let (compact, red) = build(&Extent {
             wavelength_nm: ctx.wavelength_nm,
             center_um: Some(best.center_um),
             around: vec![best, *start],
-            center_margin_um: 0.1 * a_um,
+            center_margin_um: center_margin,
             defocus_margin_um: dof,
             tail: FIT_TAIL,
+            tilt_margin_cycles_per_um: tilt_room,
         });
         let obj = Objective::new(&red, &sampler);
         let eta = |a: &Alignment| {
@@ -368,7 +517,7 @@ where
 
         // 3. Simplex on every free parameter. Bounds: the modes stay on the compact grid
         // and inside its band (see [`super::compact`]), scale in [0.5, 2], defocus within
-        // 20 depths of focus of the start.
+        // 20 depths of focus of the start (40 once widened).
         let cb = compact.center_bounds_um;
         let tmax = compact.tilt_max_mrad;
         let bound = |p: P| -> (f64, f64) {
@@ -378,7 +527,10 @@ where
                 P::Rot => (f64::NEG_INFINITY, f64::INFINITY),
                 P::Scale => (0.5, 2.0),
                 P::Tx | P::Ty => (-tmax, tmax),
-                P::Dz => (start.defocus_um - 20.0 * dof, start.defocus_um + 20.0 * dof),
+                P::Dz => (
+                    start.defocus_um - dz_room * dof,
+                    start.defocus_um + dz_room * dof,
+                ),
             }
         };
         let base = best;
@@ -389,7 +541,13 @@ where
             }
             a
         };
-        let x0: Vec<f64> = free.iter().map(|&p| get(&best, p) / unit(p)).collect();
+        let x0: Vec<f64> = free
+            .iter()
+            .map(|&p| {
+                let (lo, hi) = bound(p);
+                get(&best, p).clamp(lo, hi) / unit(p)
+            })
+            .collect();
         let bounds = Bounds {
             lo: free.iter().map(|&p| bound(p).0 / unit(p)).collect(),
             hi: free.iter().map(|&p| bound(p).1 / unit(p)).collect(),
@@ -445,22 +603,117 @@ where
             }
         }
         let attempted = to_alignment(&x_fit);
-        if round == 0 && m.converged && !compact.holds(&attempted) {
+        if !recentred && m.converged && !compact.holds(&attempted) {
             best = attempted;
-            round += 1;
+            recentred = true;
             continue;
         }
-        for (i, p) in free.iter().enumerate() {
-            let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
-            if (x_fit[i] - lo).abs() < 1e-9 || (x_fit[i] - hi).abs() < 1e-9 {
-                message = format!(
-                    "{} ran into its bound {} (the pattern may be off the grid, or the start is far off)",
-                    name(*p),
-                    x_fit[i] * unit(*p)
-                );
-            }
+        let at_bound: Vec<usize> = (0..n)
+            .filter(|&i| {
+                let (lo, hi) = (bounds.lo[i], bounds.hi[i]);
+                (x_fit[i] - lo).abs() < 1e-9 || (x_fit[i] - hi).abs() < 1e-9
+            })
+            .collect();
+        if !at_bound.is_empty() && !widened && m.converged {
+            // Widen once: three times the room for the centre, the tilt and the defocus,
+            // and search again from where this search ended.
+            widened = true;
+            center_margin *= 3.0;
+            tilt_room = 3.0 * tilt_room.max(bin_cycles_per_um)
+                + attempted.tilt_mrad[0]
+                    .abs()
+                    .max(attempted.tilt_mrad[1].abs())
+                    * 1e-3
+                    / wl_um;
+            dz_room *= 2.0;
+            best = attempted;
+            continue;
+        }
+        if let Some(&i) = at_bound.first() {
+            let p = free[i];
+            let v = x_fit[i] * unit(p);
+            let by = v - get(start, p);
+            let extra = match p {
+                P::Tx => format!(
+                    " = {:.1} FFT bins of tilt from the start (a carrier that far off: give \
+                     `carrier`)",
+                    by / bin_mrad[0]
+                ),
+                P::Ty => format!(
+                    " = {:.1} FFT bins of tilt from the start (a carrier that far off: give \
+                     `carrier`)",
+                    by / bin_mrad[1]
+                ),
+                _ => String::new(),
+            };
+            message = format!(
+                "{} ran into its bound {:.4} after the search was widened once ({:+.4} from \
+                 the start{extra}); the pattern may be off the grid, or the start is far off",
+                name(p),
+                v,
+                by
+            );
         }
         let converged = message.is_empty();
+
+        // Significance of the optional parameters from the quadratic model at the fit:
+        // holding parameter p at its nominal value c costs
+        // dS = (c - x_p)^2 / (2 [H^-1]_pp) of residual power (H the Hessian of S), and the
+        // likelihood-ratio statistic is dS / sigma^2 with sigma^2 the residual's variance
+        // per real sample (chi-square with one degree of freedom when p is not needed).
+        if converged && !tested {
+            tested = true;
+            if let Some(inv) = curvature
+                .as_ref()
+                .and_then(|hm| hm.clone().cholesky())
+                .map(|c| c.inverse())
+            {
+                let n_real = 2.0 * (compact.fine_pixels * red.frames) as f64;
+                let sigma2 = (s_fit.max(0.0) / (n_real - n as f64).max(1.0)).max(1e-300);
+                let mut dropped = Vec::new();
+                for &p in &optional {
+                    let Some(i) = free.iter().position(|&q| q == p) else {
+                        continue;
+                    };
+                    let d = get(start, p) / unit(p) - x_fit[i];
+                    let ds = d * d / (2.0 * inv[(i, i)].max(1e-300));
+                    let stat = ds / sigma2;
+                    let gain = ds / red.total.max(1e-300);
+                    let keep = stat > SIGNIFICANCE_CHI2 && gain > MIN_GAIN;
+                    if let Some(dec) = decisions.iter_mut().find(|d| d.parameter == name(p)) {
+                        dec.fitted = keep;
+                        dec.statistic = Some(stat);
+                        dec.gain = Some(gain);
+                        dec.reason = if keep {
+                            format!(
+                                "fitted: significant (likelihood ratio {stat:.3e} > \
+                                 {SIGNIFICANCE_CHI2}, captured fraction +{gain:.2e} > \
+                                 {MIN_GAIN:.0e})"
+                            )
+                        } else {
+                            format!(
+                                "held at the setup's value: not significant (likelihood ratio \
+                                 {stat:.3e}, threshold {SIGNIFICANCE_CHI2}; captured fraction \
+                                 +{gain:.2e}, threshold {MIN_GAIN:.0e})"
+                            )
+                        };
+                    }
+                    if !keep {
+                        dropped.push(p);
+                    }
+                }
+                if !dropped.is_empty() {
+                    let mut a = attempted;
+                    for &p in &dropped {
+                        set(&mut a, p, get(start, p));
+                    }
+                    free.retain(|p| !dropped.contains(p));
+                    best = a;
+                    continue;
+                }
+            }
+        }
+
         let captured_before = exact(start);
         let captured_after = if converged {
             exact(&attempted)
@@ -489,6 +742,7 @@ where
                 };
             }
         }
+        let rotation_kept = free.contains(&P::Rot);
         return ChannelFit {
             start: *start,
             fitted: if converged { attempted } else { *start },
@@ -498,9 +752,10 @@ where
             uncertainty,
             iterations: used.load(std::sync::atomic::Ordering::Relaxed),
             converged,
-            rotation_fitted,
+            rotation_fitted: rotation_kept,
             message,
             retained_fraction: red.retained_fraction,
+            decisions,
         };
     }
 }

@@ -136,6 +136,7 @@ where
             center_margin_um: 0.0,
             defocus_margin_um: range_um,
             tail: 1e-5,
+            tilt_margin_cycles_per_um: 0.0,
         },
     );
     let red = c.reduce(wavelength_nm, rank);

@@ -3,7 +3,7 @@
 //! (its channel keeps the starting values in both files).
 use super::{Common, Outcome};
 use crate::align::calibrate::{
-    calibrate, calibration_json, decode_raw, fitted_toml, parse_frames, stack_path,
+    calibrate, calibration_json, decode_raw, fitted_toml, fold_tilt, parse_frames, stack_path,
 };
 use crate::align::fit::FitSpec;
 use crate::error::{Error, Result};
@@ -102,9 +102,12 @@ pub fn run(args: &CalibrateArgs) -> Result<Outcome> {
     for b in &bars {
         b.finish_and_clear();
     }
-    let json = calibration_json(&setup, &fits, used);
+    let carriers: Vec<[f64; 2]> = raw.info.iter().map(|i| i.carrier_cycles_per_px).collect();
+    let decoding = fold_tilt(&setup, &carriers, &fits);
+    let json = calibration_json(&setup, &fits, &decoding, &carriers, used);
+    let fitted = fitted_toml(&setup, &text, &decoding)?;
     out.write_json("calibration.json", &json)?;
-    out.write_text("fitted.toml", &fitted_toml(&setup, &text, &fits)?)?;
+    out.write_text("fitted.toml", &fitted)?;
 
     let rows: Vec<Vec<String>> = setup
         .channels
@@ -121,6 +124,19 @@ pub fn run(args: &CalibrateArgs) -> Result<Outcome> {
                 format!("{:.2}", a.defocus_um),
                 format!("{:.4}", f.captured_before),
                 format!("{:.4}", f.captured_after),
+                {
+                    let held: Vec<&str> = f
+                        .decisions
+                        .iter()
+                        .filter(|d| !d.fitted)
+                        .map(|d| d.parameter)
+                        .collect();
+                    if held.is_empty() {
+                        "-".into()
+                    } else {
+                        held.join(" ")
+                    }
+                },
                 if f.converged {
                     "yes".into()
                 } else {
@@ -139,6 +155,7 @@ pub fn run(args: &CalibrateArgs) -> Result<Outcome> {
             "defocus_um",
             "captured_before",
             "captured_after",
+            "held (calibration.json: parameters)",
             "converged",
         ],
         &rows,

@@ -32,7 +32,9 @@ pub fn run(args: &MatrixArgs) -> Result<Outcome> {
     let stack = pipeline::stack_path(&setup)?;
     let total = crate::frames::FrameStack::open(&[stack])?.len();
     let pb = super::progress(total.unwrap_or(0) as u64, "decode", args.common.quiet);
-    let d = pipeline::decode_sequence(&setup, &basis, None, false, &|n| pb.set_position(n as u64))?;
+    let d = pipeline::decode_sequence(&setup, &basis, None, None, false, &|n| {
+        pb.set_position(n as u64)
+    })?;
     pb.finish_and_clear();
     for w in &d.warnings {
         super::warn(args.common.quiet, w);

@@ -5,7 +5,7 @@
 //! Every output name is checked before any work starts, so an existing result is never
 //! half-replaced; without `--force` nothing is overwritten.
 use super::{Common, Outcome};
-use crate::align::calibrate::{calibrate, calibration_json, decode_raw, fitted_toml};
+use crate::align::calibrate::{calibrate, calibration_json, decode_raw, fitted_toml, fold_tilt};
 use crate::align::check::{worst, Status, Thresholds};
 use crate::align::fit::FitSpec;
 use crate::align::inspect::{check_decoded, check_setup};
@@ -69,6 +69,8 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     // 1. Calibrate.
     let mut calibration = None;
     let mut raw_fields = None;
+    let mut carriers = None;
+    let mut fit_setup = None;
     if !args.no_calibrate {
         let pb = super::progress(n_total, "calibrate", q);
         let raw = decode_raw(&setup, std::slice::from_ref(&stack), &|n| {
@@ -77,6 +79,7 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
         pb.finish_and_clear();
         let spec = FitSpec::default();
         let fits = calibrate(&setup, &basis, &raw, None, &spec, &|_, _| {})?;
+        let used: Vec<[f64; 2]> = raw.info.iter().map(|i| i.carrier_cycles_per_px).collect();
         raw_fields = Some(raw);
         for (ch, f) in setup.channels.iter().zip(&fits) {
             if !f.converged {
@@ -89,20 +92,34 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
                 );
             }
         }
-        let json = calibration_json(&setup, &fits, n_total as usize);
-        let fitted = fitted_toml(&setup, &text, &fits)?;
-        for (ch, f) in setup.channels.iter_mut().zip(&fits) {
+        let decoding = fold_tilt(&setup, &used, &fits);
+        let json = calibration_json(&setup, &fits, &decoding, &used, n_total as usize);
+        let fitted = fitted_toml(&setup, &text, &decoding)?;
+        // The check reads the calibration's fields (decoded with the first carrier): it
+        // takes the fitted alignment as fitted, tilt included.
+        let mut fs = setup.clone();
+        for (ch, f) in fs.channels.iter_mut().zip(&fits) {
             set_alignment(ch, &f.fitted);
         }
+        fit_setup = Some(fs);
+        for (ch, d) in setup.channels.iter_mut().zip(&decoding) {
+            set_alignment(ch, &d.alignment);
+        }
+        carriers = Some(decoding.iter().map(|d| d.carrier_cycles_per_px).collect());
         calibration = Some((json, fitted));
     }
     let alignments: Vec<Alignment> = setup.channels.iter().map(|c| c.alignment()).collect();
 
     // 2. Decode with the (fitted) alignment, 3. assemble and analyse.
     let pb = super::progress(n_total, "decode", q);
-    let d = pipeline::decode_sequence(&setup, &basis, Some(alignments.clone()), false, &|n| {
-        pb.set_position(n as u64)
-    })?;
+    let d = pipeline::decode_sequence(
+        &setup,
+        &basis,
+        Some(alignments.clone()),
+        carriers.clone(),
+        false,
+        &|n| pb.set_position(n as u64),
+    )?;
     pb.finish_and_clear();
     for w in &d.warnings {
         super::warn(q, w);
@@ -113,14 +130,27 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     // The calibration's fields serve the check too (they do not depend on the alignment).
     let frames = std::slice::from_ref(&stack);
     let items = match &raw_fields {
-        Some(raw) => check_decoded(&setup, &basis, frames, raw, &Thresholds::default())?,
+        Some(raw) => check_decoded(
+            fit_setup.as_ref().unwrap_or(&setup),
+            &basis,
+            frames,
+            raw,
+            &Thresholds::default(),
+        )?,
         None => check_setup(&setup, &basis, frames, &Thresholds::default(), &|_| {})?,
     };
     drop(raw_fields);
     let check_status = worst(&items);
 
     // 5. Pictures.
-    let mut pictures = pipeline::frame_pictures(&setup, Some(alignments), args.picture_frame)?;
+    // Pictures decode one frame again: with the carriers the sequence was decoded with.
+    let mut pic_setup = setup.clone();
+    for (ch, info) in pic_setup.channels.iter_mut().zip(&d.channels) {
+        ch.carrier = crate::setup::AutoOr::Value(info.carrier_cycles_per_px);
+        ch.carrier_period_px = None;
+        ch.carrier_angle_deg = None;
+    }
+    let mut pictures = pipeline::frame_pictures(&pic_setup, Some(alignments), args.picture_frame)?;
     pictures.extend(pipeline::matrix_pictures(&basis, &analysis));
     let gallery_px = 96;
     let grid = crate::grid::Grid::centred(

@@ -350,6 +350,25 @@ impl Basis {
         })
     }
 
+    /// Keep only the modes for which `keep` is true (e.g. one orientation of each pair, for a
+    /// partial measurement); indices are renumbered in the kept order.
+    pub fn retain(&mut self, keep: impl Fn(&ModeInfo) -> bool) {
+        let flags: Vec<bool> = self.modes.iter().map(&keep).collect();
+        let mut i = 0;
+        self.shapes.retain(|_| {
+            i += 1;
+            flags[i - 1]
+        });
+        let mut i = 0;
+        self.modes.retain(|_| {
+            i += 1;
+            flags[i - 1]
+        });
+        for (k, m) in self.modes.iter_mut().enumerate() {
+            m.index = k;
+        }
+    }
+
     /// Number of modes.
     pub fn len(&self) -> usize {
         self.modes.len()
