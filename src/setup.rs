@@ -347,7 +347,7 @@ fn default_dc_exclusion() -> f64 {
     0.05
 }
 fn default_carrier_frames() -> usize {
-    8
+    16
 }
 
 fn finite_positive(file: &str, key: &str, v: f64) -> Result<()> {

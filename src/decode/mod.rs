@@ -159,6 +159,37 @@ pub fn refine_auto_carriers(p: &mut Prepared, projectors: &[Projector]) {
         }
         match refine::refine(&p.plans[i], q, &p.carrier_frames) {
             Ok(r) => {
+                // The basis refinement is unbiased only when the setup's alignment is right:
+                // with the centre and defocus off, a tilt partly makes up for them and pulls
+                // the carrier away from the sideband. A pull beyond what the centre of power
+                // can be wrong by is taken as that, and the centre kept.
+                let info = &p.channels[i];
+                let [_, _, w, h] = info.region;
+                let c0 = info.carrier_cycles_per_px;
+                let pull = [
+                    (r.carrier[0] - c0[0]) * w as f64,
+                    (r.carrier[1] - c0[1]) * h as f64,
+                ];
+                let sc = info
+                    .carrier_uncertainty_cycles_per_px
+                    .map(|u| [u[0] * w as f64, u[1] * h as f64])
+                    .unwrap_or([0.0; 2]);
+                let limit = [
+                    (3.0 * sc[0]).max(refine::ACCEPT_BINS),
+                    (3.0 * sc[1]).max(refine::ACCEPT_BINS),
+                ];
+                if pull[0].abs() > limit[0] || pull[1].abs() > limit[1] {
+                    p.warnings.push(format!(
+                        "channel {}: at the setup's alignment the basis pulls the carrier \
+                         ({:+.2}, {:+.2}) FFT bins from the sideband's centre of power, more \
+                         than that centre can be off ({:.2}, {:.2} bins): the centre of power is \
+                         kept; the setup's center_um / defocus_um are probably off (run \
+                         `calibrate`, which fits them with the tilt)",
+                        info.name, pull[0], pull[1], limit[0], limit[1]
+                    ));
+                    p.channels[i].carrier_basis_shift_bins = Some(0.0);
+                    continue;
+                }
                 let mut spec = p.plans[i].spec.clone();
                 spec.carrier_cycles_per_px = r.carrier;
                 p.plans[i] = DecodePlan::build(spec);

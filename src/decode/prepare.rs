@@ -151,8 +151,8 @@ fn carrier_problem_message(
     p: &carrier::Problem,
 ) -> String {
     let wher = format!(
-        "searched the mean power spectrum of frames 0..{frames} in region {region:?} outside \
-         |f| < {} cycles/px (decode.dc_exclusion)",
+        "searched the mean power spectrum of {frames} frame(s) (decode.carrier_frames, spread \
+         over the stack) in region {region:?} outside |f| < {} cycles/px (decode.dc_exclusion)",
         s.dc_exclusion
     );
     match p {
@@ -210,14 +210,24 @@ pub fn prepare(setup: &Setup, frames: &[PathBuf], opts: &DecodeOptions) -> Resul
         Some(p) => Some(background_file(&setup.resolve(p), fw, fh)?),
         None => None,
     };
-    // The first frames, for the carrier search and the reference-amplitude estimate.
+    // Frames for the carrier search and the reference-amplitude estimate: spread evenly over
+    // the stack when its length is known (the mean over a whole launch sequence is point
+    // symmetric for a lossless device, a run of the first launches need not be), else the
+    // first ones.
+    let want = setup.decode.carrier_frames.max(1);
+    let picks: Vec<usize> = match stack.len() {
+        Some(n) if n > want => (0..want).map(|k| ((2 * k + 1) * n) / (2 * want)).collect(),
+        _ => (0..want).collect(),
+    };
     let mut carrier_frames = Vec::new();
-    for _ in 0..setup.decode.carrier_frames {
-        let mut buf = vec![0f32; fw * fh];
+    let mut buf = vec![0f32; fw * fh];
+    for i in 0..=picks.last().copied().unwrap_or(0) {
         if stack.read_next(&mut buf)?.is_none() {
             break;
         }
-        carrier_frames.push(buf);
+        if picks.binary_search(&i).is_ok() {
+            carrier_frames.push(buf.clone());
+        }
     }
     if carrier_frames.is_empty() {
         return Err(Error::frame(&frames[0], None, "the stack holds no frame"));

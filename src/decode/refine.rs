@@ -21,6 +21,10 @@ use std::f64::consts::PI;
 
 /// Largest accepted refinement, FFT bins of the region (per axis).
 pub const MAX_SHIFT_BINS: f64 = 2.0;
+/// Largest pull from the centre of power that is taken without question, FFT bins per axis
+/// (beyond it, and beyond three standard deviations of the centre, the caller keeps the
+/// centre: see `decode::refine_auto_carriers`).
+pub const ACCEPT_BINS: f64 = 0.25;
 /// Largest single Newton step, FFT bins.
 const MAX_STEP_BINS: f64 = 0.5;
 
