@@ -14,12 +14,18 @@
 //!    frame powers as its denominator.
 //! 1. Starting candidates: the given alignment; the centre from the intensity centroid of
 //!    the summed frames; the tilt from the centroid of the summed spatial power spectrum
-//!    (a tilt t shifts the spectrum by t / lambda, docs/conventions.md). The best is kept.
+//!    (a tilt t shifts the spectrum by t / lambda, docs/conventions.md). The best is kept,
+//!    then a coarse tilt scan in whole FFT bins over [`FitSpec::tilt_search_bins`] around it
+//!    (a carrier a few bins off is that many bins of tilt).
 //! 2. Coarse scans with golden-section refinement of defocus (the basis is sampled once, so
 //!    these cost one inverse FFT per mode) and of scale.
 //! 3. Nelder-Mead on all free parameters in scaled units (see [`optimise`]), stopped loosely.
 //! 4. Newton steps on the residual power from its finite-difference gradient and Hessian,
 //!    accepted only when they lower it; the same Hessian gives the uncertainty.
+//! 5. A search that ends on a bound is widened once and repeated; rotation (unless forced)
+//!    and scale are then tested against their nominal values (likelihood ratio and a
+//!    minimum gain, [`SIGNIFICANCE_CHI2`], [`MIN_GAIN`]) and stages 3-4 rerun without the
+//!    ones that do not earn their place; [`ChannelFit::decisions`] says which and why.
 //!
 //! Rotation is fitted only when the objective depends on it: a basis made of complete
 //! degenerate sets (every LP group with both cos and sin, every HG/LG group whole) captures
