@@ -229,19 +229,33 @@ impl Map {
         let mut p = vec![0.0; w * h];
         let mut dc = vec![false; w * h];
         let ff = spec.fill_factor;
-        for ky in 0..h {
+        // Aperture factor per axis, once per column and row.
+        let aperture = |n: usize| -> Vec<f64> {
+            (0..n)
+                .map(|k| {
+                    let f = signed(k, n) as f64 / n as f64;
+                    if ff > 0.0 {
+                        sinc(ff * f).powi(2)
+                    } else {
+                        1.0
+                    }
+                })
+                .collect()
+        };
+        let (ax, ay) = (aperture(w), aperture(h));
+        let fxs: Vec<f64> = (0..w).map(|k| signed(k, w) as f64 / w as f64).collect();
+        let dc2 = spec.dc_exclusion * spec.dc_exclusion;
+        for (ky, &ayk) in ay.iter().enumerate() {
             let fy = signed(ky, h) as f64 / h as f64;
-            let sy = if ff > 0.0 { sinc(ff * fy).powi(2) } else { 1.0 };
             for kx in 0..w {
-                let fx = signed(kx, w) as f64 / w as f64;
+                let fx = fxs[kx];
                 let i = ky * w + kx;
-                if fx.hypot(fy) < spec.dc_exclusion {
+                if fx * fx + fy * fy < dc2 {
                     dc[i] = true;
                     continue;
                 }
-                let sx = if ff > 0.0 { sinc(ff * fx).powi(2) } else { 1.0 };
                 let v = s.power[s.index(signed(ky, h), signed(kx, w))];
-                p[i] = v / (sx * sy).max(1e-6);
+                p[i] = v / (ax[kx] * ayk).max(1e-6);
             }
         }
         Map { w, h, p, dc }
@@ -259,21 +273,25 @@ impl Map {
         let (w, h) = (self.w, self.h);
         let rx = rx.min((w - 1) / 2);
         let ry = ry.min((h - 1) / 2);
+        let wrap = |i: usize, n: usize| if i >= n { i - n } else { i };
         let mut a = vec![0.0; w * h];
         for y in 0..h {
             let row = &self.p[y * w..(y + 1) * w];
             let mut acc: f64 = (0..=2 * rx).map(|d| row[(d + w - rx) % w]).sum();
             for x in 0..w {
                 a[y * w + x] = acc;
-                acc += row[(x + rx + 1) % w] - row[(x + w - rx) % w];
+                acc += row[wrap(x + rx + 1, w)] - row[wrap(x + w - rx, w)];
             }
         }
         let mut b = vec![0.0; w * h];
-        for x in 0..w {
-            let mut acc: f64 = (0..=2 * ry).map(|d| a[((d + h - ry) % h) * w + x]).sum();
-            for y in 0..h {
-                b[y * w + x] = acc;
-                acc += a[((y + ry + 1) % h) * w + x] - a[((y + h - ry) % h) * w + x];
+        let mut acc: Vec<f64> = (0..w)
+            .map(|x| (0..=2 * ry).map(|d| a[((d + h - ry) % h) * w + x]).sum())
+            .collect();
+        for y in 0..h {
+            b[y * w..(y + 1) * w].copy_from_slice(&acc);
+            let (add, sub) = (wrap(y + ry + 1, h) * w, wrap(y + h - ry, h) * w);
+            for x in 0..w {
+                acc[x] += a[add + x] - a[sub + x];
             }
         }
         b
@@ -379,9 +397,10 @@ pub fn estimate(s: &MeanSpectrum, spec: &SearchSpec) -> Result<Estimate, Problem
     let (rx, ry) = (r_box(w), r_box(h));
     let sm = map.smoothed(rx, ry);
     let guard = spec.dc_exclusion + 2.0 * (rx as f64 / w as f64).max(ry as f64 / h as f64);
+    let guard2 = guard * guard;
     let usable = |i: usize| {
         let f = map.freq(i % w, i / w);
-        f[0].hypot(f[1]) >= guard
+        f[0] * f[0] + f[1] * f[1] >= guard2
     };
     let mut best = (usize::MAX, f64::NEG_INFINITY);
     for (i, &v) in sm.iter().enumerate() {
@@ -399,18 +418,21 @@ pub fn estimate(s: &MeanSpectrum, spec: &SearchSpec) -> Result<Estimate, Problem
         Some(b) if b > 0.0 => (1.2 * b + 2.0 / n).min(clear),
         _ => 0.9 * clear,
     };
-    // Noise floor: the map outside the DC disc and outside both sideband discs.
-    let mut bg = Vec::with_capacity(w * h);
-    for ky in 0..h {
-        for kx in 0..w {
+    // Noise floor: the map outside the DC disc and outside both sideband discs (on a
+    // lattice of at most about 2^16 bins: the median of that many is as good as of all).
+    let step = (((w * h) as f64 / 65536.0).sqrt().floor() as usize).max(1);
+    let mut bg = Vec::with_capacity((w / step + 1) * (h / step + 1));
+    for ky in (0..h).step_by(step) {
+        for kx in (0..w).step_by(step) {
             let i = ky * w + kx;
             if map.dc[i] {
                 continue;
             }
             let f = map.freq(kx, ky);
-            let d1 = (f[0] - coarse[0]).hypot(f[1] - coarse[1]);
-            let d2 = (f[0] + coarse[0]).hypot(f[1] + coarse[1]);
-            if d1 > 1.5 * disc && d2 > 1.5 * disc && f[0].hypot(f[1]) > 2.0 * disc {
+            let d1 = (f[0] - coarse[0]).powi(2) + (f[1] - coarse[1]).powi(2);
+            let d2 = (f[0] + coarse[0]).powi(2) + (f[1] + coarse[1]).powi(2);
+            let r1 = (1.5 * disc).powi(2);
+            if d1 > r1 && d2 > r1 && f[0] * f[0] + f[1] * f[1] > 4.0 * disc * disc {
                 bg.push(map.p[i]);
             }
         }
@@ -473,9 +495,10 @@ pub fn estimate(s: &MeanSpectrum, spec: &SearchSpec) -> Result<Estimate, Problem
                 continue;
             }
             let f = map.freq(kx, ky);
-            let d1 = (f[0] - coarse[0]).hypot(f[1] - coarse[1]);
-            let d2 = (f[0] + coarse[0]).hypot(f[1] + coarse[1]);
-            if d1 < 2.0 * disc || d2 < 2.0 * disc {
+            let d1 = (f[0] - coarse[0]).powi(2) + (f[1] - coarse[1]).powi(2);
+            let d2 = (f[0] + coarse[0]).powi(2) + (f[1] + coarse[1]).powi(2);
+            let r2 = 4.0 * disc * disc;
+            if d1 < r2 || d2 < r2 {
                 continue;
             }
             let local_max = (-1i64..=1).all(|dy| {
