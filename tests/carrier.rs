@@ -187,7 +187,7 @@ fn check_carriers(case: &Case, chans: &[Chan; 2], what: &str) -> Decoded {
 
 /// Eight reference directions (both half-planes, near each axis and on the diagonals),
 /// carriers 0.2 - 0.33 cycles/px, regions away from the frame's corner, with shot, read and
-/// quantisation noise.
+/// quantisation noise; the calibration converges on each.
 #[test]
 fn automatic_carrier_in_eight_directions() {
     let dirs: [(f64, f64); 8] = [
@@ -217,6 +217,10 @@ fn automatic_carrier_in_eight_directions() {
         let fid = worst_fidelity(&auto, &truth);
         eprintln!("directions {pair:?}: worst per-frame fidelity {fid:.7}");
         assert!(fid >= 0.9999, "fidelity {fid} for {pair:?}");
+        let (fits, _) = run_calibration(&case);
+        for f in &fits {
+            assert!(f.converged, "calibration for {pair:?}: {}", f.message);
+        }
     }
 }
 
@@ -395,4 +399,52 @@ fn carrier_three_bins_off_is_absorbed_by_the_tilt() {
         );
         assert!(f.captured_after > 0.98, "{}", f.captured_after);
     }
+}
+
+/// The calibration and the decode give bit-identical results on 1 and 2 threads
+/// (DEVELOPERS.md: sums are split in fixed chunks and added in a fixed order).
+#[test]
+fn calibration_and_decode_do_not_depend_on_the_thread_count() {
+    let setup = Setup::load(std::path::Path::new("frames-demo/setup.toml")).unwrap();
+    let basis = Basis::from_setup(&setup).unwrap();
+    let stack = setup.resolve(setup.frames.stack.as_ref().unwrap());
+    let go = |threads: usize| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(|| {
+                let raw = decode_raw(&setup, std::slice::from_ref(&stack), &|_| {}).unwrap();
+                let fits =
+                    calibrate(&setup, &basis, &raw, None, &FitSpec::default(), &|_, _| {}).unwrap();
+                let sampler = |g: &Grid, a: &Alignment| Ok(basis.sample(g, a));
+                let al: Vec<Alignment> = fits.iter().map(|f| f.fitted).collect();
+                let opts = DecodeOptions {
+                    alignments: Some(al),
+                    ..Default::default()
+                };
+                let d = decode_stack(
+                    &setup,
+                    Some(&sampler),
+                    std::slice::from_ref(&stack),
+                    &opts,
+                    &|_| {},
+                )
+                .unwrap();
+                (fits, d.coefficients)
+            })
+    };
+    let (f1, c1) = go(1);
+    let (f2, c2) = go(2);
+    for (a, b) in f1.iter().zip(&f2) {
+        assert_eq!(
+            a.fitted, b.fitted,
+            "fitted alignment differs between 1 and 2 threads"
+        );
+        assert_eq!(a.captured_after.to_bits(), b.captured_after.to_bits());
+    }
+    assert!(
+        c1.iter().zip(c2.iter()).all(|(x, y)| x == y),
+        "coefficients differ"
+    );
 }

@@ -126,23 +126,27 @@ pub struct BasisExtent {
     spectrum: Vec<f64>,
 }
 
+/// Modes per work item when summing a basis' power and spectrum (fixed, so the sum order is).
+const EXTENT_CHUNK_MODES: usize = 4;
+
 impl BasisExtent {
     /// `basis` (modes x ny x nx) sampled on `grid` with its axis at `center_um`.
     pub fn new(basis: ArrayView3<Complex64>, grid: &Grid, center_um: [f64; 2]) -> BasisExtent {
         let fft = Fft2::new(grid.ny, grid.nx);
         let zero = || (vec![0.0; grid.len()], vec![0.0; grid.len()]);
-        let (power, spectrum) = basis
-            .axis_iter(Axis(0))
+        // Fixed groups of modes summed in parallel, the partial sums added in group order,
+        // so the result does not depend on the number of threads.
+        let n_modes = basis.dim().0;
+        let starts: Vec<usize> = (0..n_modes).step_by(EXTENT_CHUNK_MODES).collect();
+        let parts: Vec<(Vec<f64>, Vec<f64>)> = starts
             .into_par_iter()
-            .fold(
-                || {
-                    (
-                        zero(),
-                        vec![Complex64::new(0.0, 0.0); fft.scratch_len()],
-                        vec![Complex64::new(0.0, 0.0); grid.len()],
-                    )
-                },
-                |((mut p, mut s), mut scratch, mut work), m| {
+            .map(|start| {
+                let (mut p, mut s) = zero();
+                let mut scratch = vec![Complex64::new(0.0, 0.0); fft.scratch_len()];
+                let mut work = vec![Complex64::new(0.0, 0.0); grid.len()];
+                let end = (start + EXTENT_CHUNK_MODES).min(n_modes);
+                for k in start..end {
+                    let m = basis.index_axis(Axis(0), k);
                     for ((o, w), z) in p.iter_mut().zip(work.iter_mut()).zip(m.iter()) {
                         *o += z.norm_sqr();
                         *w = *z;
@@ -151,15 +155,15 @@ impl BasisExtent {
                     for (o, z) in s.iter_mut().zip(&work) {
                         *o += z.norm_sqr();
                     }
-                    ((p, s), scratch, work)
-                },
-            )
-            .map(|(ps, _, _)| ps)
-            .reduce(zero, |(mut a, mut b), (c, d)| {
-                a.iter_mut().zip(&c).for_each(|(x, y)| *x += y);
-                b.iter_mut().zip(&d).for_each(|(x, y)| *x += y);
-                (a, b)
-            });
+                }
+                (p, s)
+            })
+            .collect();
+        let (mut power, mut spectrum) = zero();
+        for (c, d) in &parts {
+            power.iter_mut().zip(c).for_each(|(x, y)| *x += y);
+            spectrum.iter_mut().zip(d).for_each(|(x, y)| *x += y);
+        }
         BasisExtent {
             grid: *grid,
             center_um,

@@ -340,9 +340,10 @@ fn captured_sum(modes: &[Vec<Complex64>], y: &Array2<f64>, da: f64) -> f64 {
     if m == 0 {
         return 0.0;
     }
-    let chunk = m.div_ceil(rayon::current_num_threads().max(1)).max(1);
-    modes
-        .par_chunks(chunk)
+    // Fixed-size chunks whose partial sums are added in chunk order: the result does not
+    // depend on the number of threads.
+    let parts: Vec<f64> = modes
+        .par_chunks(CAPTURED_CHUNK_MODES)
         .map(|part| {
             let mut x = Array2::<f64>::zeros((part.len(), 2 * n));
             for (k, phi) in part.iter().enumerate() {
@@ -355,10 +356,12 @@ fn captured_sum(modes: &[Vec<Complex64>], y: &Array2<f64>, da: f64) -> f64 {
             general_mat_mul(1.0, &x, y, 0.0, &mut out);
             out.iter().map(|v| v * v).sum::<f64>()
         })
-        .sum::<f64>()
-        * da
-        * da
+        .collect();
+    parts.iter().sum::<f64>() * da * da
 }
+
+/// Modes per work item of [`captured_sum`] (fixed, so the sum order is too).
+const CAPTURED_CHUNK_MODES: usize = 8;
 
 /// Geometric part of an alignment (tilt and defocus zeroed): what the sampler sees.
 pub fn geometry(a: &Alignment) -> Alignment {
