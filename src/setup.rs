@@ -350,6 +350,12 @@ fn default_carrier_frames() -> usize {
     16
 }
 
+/// Largest `fiber.solver_points_per_radius` (the radial grid then has at most
+/// 20000 x 50 = 1e6 points).
+pub const MAX_POINTS_PER_RADIUS: usize = 20_000;
+/// Largest `fiber.solver_extent_radii`.
+pub const MAX_EXTENT_RADII: f64 = 50.0;
+
 fn finite_positive(file: &str, key: &str, v: f64) -> Result<()> {
     if !v.is_finite() || v <= 0.0 {
         return Err(Error::setup(file, key, v, "must be a finite number > 0"));
@@ -665,20 +671,22 @@ impl Setup {
                 "must be a finite exponent > 0",
             ));
         }
-        if fb.solver_points_per_radius < 20 {
+        if !(20..=MAX_POINTS_PER_RADIUS).contains(&fb.solver_points_per_radius) {
             return Err(Error::setup(
                 f,
                 "fiber.solver_points_per_radius",
                 fb.solver_points_per_radius,
-                "must be at least 20",
+                format!("must be between 20 and {MAX_POINTS_PER_RADIUS} (default 400)"),
             ));
         }
-        if !(fb.solver_extent_radii.is_finite() && fb.solver_extent_radii >= 1.5) {
+        if !(fb.solver_extent_radii.is_finite()
+            && (1.5..=MAX_EXTENT_RADII).contains(&fb.solver_extent_radii))
+        {
             return Err(Error::setup(
                 f,
                 "fiber.solver_extent_radii",
                 fb.solver_extent_radii,
-                "must be at least 1.5 core radii",
+                format!("must be between 1.5 and {MAX_EXTENT_RADII} core radii (default 3)"),
             ));
         }
         if !(fb.cutoff_margin_b.is_finite() && (0.0..0.5).contains(&fb.cutoff_margin_b)) {

@@ -38,6 +38,9 @@ pub struct ModesArgs {
 
 const OUTPUTS: [&str; 4] = ["modes.json", "basis.npy", "basis.json", "gallery.png"];
 
+/// Largest sampled basis, bytes (4 GB).
+const MAX_BASIS_BYTES: f64 = 4e9;
+
 /// Radius (um) holding all but `1e-5` of every mode's power.
 fn enclosing_radius_um(basis: &Basis) -> f64 {
     let a = basis.core_radius_um;
@@ -71,13 +74,37 @@ fn enclosing_radius_um(basis: &Basis) -> f64 {
 
 /// The grid and alignment the basis is sampled on.
 pub fn sampling_grid(setup: &Setup, basis: &Basis, args: &ModesArgs) -> Result<(Grid, Alignment)> {
+    // basis.npy holds modes x ny x nx complex128 values: bound it before allocating.
+    let fits = |nx: usize, ny: usize, what: &str| -> Result<()> {
+        let bytes = (basis.len() as f64) * (nx as f64) * (ny as f64) * 16.0;
+        if bytes > MAX_BASIS_BYTES {
+            return Err(Error::Input(format!(
+                "{what}: {} modes on {nx} x {ny} px would take {:.1} GB, more than the {:.0} GB \
+                 limit; use a smaller grid",
+                basis.len(),
+                bytes / 1e9,
+                MAX_BASIS_BYTES / 1e9
+            )));
+        }
+        Ok(())
+    };
     if let Some(ch) = setup.channels.first() {
         let pitch = ch.fibre_pitch_um(&setup.camera);
+        fits(
+            ch.region[2],
+            ch.region[3],
+            &format!("channel {} region {:?}", ch.name, ch.region),
+        )?;
         return Ok((
             Grid::centred(ch.region[2], ch.region[3], pitch),
             ch.alignment(),
         ));
     }
+    fits(
+        args.grid_px,
+        args.grid_px,
+        &format!("--grid-px {}", args.grid_px),
+    )?;
     if args.grid_px < 8 {
         return Err(Error::Input(format!(
             "--grid-px {}: must be at least 8",

@@ -58,9 +58,57 @@ pub struct FrameReader {
     inner: Inner,
 }
 
+/// Largest frame read, pixels (16384 x 16384): a header beyond it is taken as damaged
+/// rather than allocated.
+pub const MAX_FRAME_PIXELS: usize = 1 << 28;
+
+/// Refuse a header whose declared size is beyond [`MAX_FRAME_PIXELS`], or (PNG) beyond what
+/// the file's bytes can hold: deflate expands at most about 1032:1 (RFC 1951, the longest
+/// match of 258 bytes per 2-bit code), so a PNG of N bytes holds at most about 1032 N bytes.
+fn check_declared_size(path: &Path, w: usize, h: usize, ext: &str) -> Result<()> {
+    let px = w.checked_mul(h).unwrap_or(usize::MAX);
+    if px > MAX_FRAME_PIXELS {
+        return Err(Error::frame(
+            path,
+            None,
+            format!(
+                "the header declares {w} x {h} pixels ({:.0} Mpx), more than the {} Mpx a \
+                 frame may have: the file is damaged or not a camera frame",
+                px as f64 / 1e6,
+                MAX_FRAME_PIXELS / 1_000_000
+            ),
+        ));
+    }
+    if ext == "png" {
+        let bytes = std::fs::metadata(path).map(|m| m.len()).unwrap_or(u64::MAX);
+        if (px as u64) > bytes.saturating_mul(1032) {
+            return Err(Error::frame(
+                path,
+                None,
+                format!(
+                    "the header declares {w} x {h} pixels but the file has only {bytes} bytes, \
+                     too few to hold them even fully compressed: the file is truncated or damaged"
+                ),
+            ));
+        }
+    }
+    Ok(())
+}
+
 impl FrameReader {
     /// Open a file; the format is chosen by its extension (.tif/.tiff, .png, .npy).
     pub fn open(path: &Path) -> Result<FrameReader> {
+        // A FIFO or a device would block or never end: frames must be regular files.
+        match std::fs::metadata(path) {
+            Ok(m) if !m.is_file() => {
+                return Err(Error::frame(
+                    path,
+                    None,
+                    "not a regular file (a folder, FIFO or device): give a .tif, .png or .npy file",
+                ))
+            }
+            _ => {}
+        }
         let ext = path
             .extension()
             .and_then(|e| e.to_str())
@@ -93,6 +141,7 @@ impl FrameReader {
         if width == 0 || height == 0 {
             return Err(Error::frame(path, None, "frame has no pixels"));
         }
+        check_declared_size(path, width, height, &ext)?;
         Ok(FrameReader {
             path: path.to_path_buf(),
             width,

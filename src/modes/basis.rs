@@ -103,6 +103,64 @@ pub struct Basis {
     pub(crate) kind: BasisKind,
 }
 
+/// Most spatial modes (per polarisation) a basis may be solved for. A 50 um graded core at
+/// 1550 nm guides about 55 (common practice, no source); beyond this limit the figures
+/// usually come from a unit slip (um typed as nm), not from a fibre.
+pub const MAX_EXPECTED_MODES: f64 = 5000.0;
+
+/// Expected number of guided spatial modes (per polarisation) for V: `alpha / (alpha + 2)
+/// V^2 / 4` for a power-law profile (V^2 / 4 step, V^2 / 8 parabolic; Gloge & Marcatili
+/// 1973, total mode number with both polarisations `alpha / (alpha + 2) V^2 / 2`).
+pub fn expected_mode_count(v: f64, alpha: Option<f64>) -> f64 {
+    let share = alpha.map_or(1.0, |a| a / (a + 2.0));
+    share * v * v / 4.0
+}
+
+/// Refuse a V number that would guide an absurd number of modes, naming the likely slip.
+fn check_mode_count(file: &str, setup: &Setup, v: f64, n1: f64, n2: f64, a: f64) -> Result<()> {
+    let alpha = match setup.fiber.profile {
+        crate::setup::ProfileKind::Graded => Some(setup.fiber.alpha),
+        _ => None,
+    };
+    let m = expected_mode_count(v, alpha);
+    if m <= MAX_EXPECTED_MODES {
+        return Ok(());
+    }
+    let lambda = setup.light.wavelength_nm;
+    let (key, value, hint) = if lambda < 150.0 {
+        (
+            "light.wavelength_nm",
+            lambda.to_string(),
+            format!(
+                " wavelength_nm = {lambda} looks like micrometres: {lambda} um = {} nm",
+                lambda * 1e3
+            ),
+        )
+    } else if a > 500.0 {
+        (
+            "fiber.core_radius_um",
+            a.to_string(),
+            format!(" core_radius_um = {a} looks like nanometres or a diameter in the wrong unit"),
+        )
+    } else {
+        (
+            "fiber.na",
+            format!("{:.4}", (n1 * n1 - n2 * n2).sqrt()),
+            String::new(),
+        )
+    };
+    Err(Error::setup(
+        file,
+        key,
+        value,
+        format!(
+            "n1 = {n1:.5}, n2 = {n2:.5}, core radius {a} um, wavelength {lambda} nm give V = \
+             {v:.1}, about {m:.3e} guided modes per polarisation, more than the {MAX_EXPECTED_MODES} \
+             this tool solves for.{hint}"
+        ),
+    ))
+}
+
 /// A solved LP mode before ordering.
 struct Solved {
     l: u32,
@@ -209,6 +267,7 @@ impl Basis {
                 format!("gives V = {v}: no guided mode"),
             ));
         }
+        check_mode_count(&file, setup, v, n1, n2, a)?;
         let margin = fb.cutoff_margin_b;
         let neff_of_b = |b: f64| (n2 * n2 + b * na * na).max(0.0).sqrt();
         let mut entries: Vec<(ModeInfo, Shape)> = Vec::new();

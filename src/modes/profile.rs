@@ -6,8 +6,9 @@
 //! - step: f = 1 inside the core, 0 outside;
 //! - graded (power law, Gloge & Marcatili 1973): `n^2 = n1^2 (1 - 2 Delta (r/a)^alpha)`
 //!   inside, n2 outside, so f = 1 - rho^alpha;
-//! - table: CSV `radius_um,index` with a header row, linear interpolation, n2 beyond the
-//!   last row; n1 is the largest index in the table.
+//! - table: CSV `radius_um,index` with a header row, linear interpolation; n2 is the last
+//!   row's index (the cladding; `fiber.cladding_index` is not used) and holds beyond it; n1
+//!   is the largest index in the table.
 use crate::error::{Error, Result};
 use crate::setup::{ProfileKind, Setup};
 use std::path::Path;
@@ -96,7 +97,16 @@ impl Profile {
                     )
                 })?;
                 let rows = parse_table(&text, &path, &setup.file_name())?;
-                Profile::from_rows(&rows, fb.core_radius_um, n2, &path, &setup.file_name())
+                // The table's last row is the cladding (docs/setup.md); `cladding_index` is
+                // not used for a table.
+                let n2_table = rows[rows.len() - 1].1;
+                Profile::from_rows(
+                    &rows,
+                    fb.core_radius_um,
+                    n2_table,
+                    &path,
+                    &setup.file_name(),
+                )
             }
         }
     }

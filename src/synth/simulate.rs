@@ -1,7 +1,7 @@
 //! The whole simulation in memory: truth, drift, every frame of the launch sequence, the dark
 //! and reference frames. Frames are rendered in parallel (rayon, one task per frame) and are
 //! identical for any number of threads (each frame's noise comes from its own seeded stream).
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::matrix::{FrameRole, LaunchLayout};
 use crate::synth::optics::{ChannelOptics, ModeSampler};
 use crate::synth::render::{add_hologram, add_reference_only, expose, expose_mean, Scratch};
@@ -33,6 +33,9 @@ pub struct Simulation {
     /// Pixels clipped at saturation over all launch frames.
     pub clipped_pixels: usize,
 }
+
+/// Largest simulation held in memory, bytes (8 GB).
+pub const MAX_SIMULATION_BYTES: f64 = 8e9;
 
 /// The random-walk drift: drift[0] = 0, drift[f] = drift[f-1] + rate + step * N(0, 1).
 pub fn drift_sequence(scn: &Scenario, n_frames: usize) -> Vec<f64> {
@@ -88,6 +91,23 @@ pub fn simulate_with_optics(
     })?;
     let device = device_matrix(scn, groups)?;
     let n_frames = layout.expected_frames();
+    // Every frame is held in memory (f64) and written out: bound the whole before starting.
+    let bytes = n_frames as f64 * (scn.sensor.width_px * scn.sensor.height_px) as f64 * 8.0;
+    if bytes > MAX_SIMULATION_BYTES {
+        return Err(Error::setup(
+            scn.file.display().to_string(),
+            "launch.repeats",
+            l.repeats,
+            format!(
+                "{n_frames} frames of {} x {} px would take {:.1} GB in memory, more than the \
+                 {:.0} GB limit: fewer repeats, modes or pixels",
+                scn.sensor.width_px,
+                scn.sensor.height_px,
+                bytes / 1e9,
+                MAX_SIMULATION_BYTES / 1e9
+            ),
+        ));
+    }
     let drift = drift_sequence(scn, n_frames);
     let (h, w) = (scn.sensor.height_px, scn.sensor.width_px);
     let clipped = AtomicUsize::new(0);
