@@ -66,7 +66,7 @@ pub const MAX_FRAME_PIXELS: usize = 1 << 28;
 /// the file's bytes can hold: deflate expands at most about 1032:1 (RFC 1951, the longest
 /// match of 258 bytes per 2-bit code), so a PNG of N bytes holds at most about 1032 N bytes.
 fn check_declared_size(path: &Path, w: usize, h: usize, ext: &str) -> Result<()> {
-    let px = w.checked_mul(h).unwrap_or(usize::MAX);
+    let px = w.saturating_mul(h);
     if px > MAX_FRAME_PIXELS {
         return Err(Error::frame(
             path,
