@@ -156,11 +156,32 @@ pub struct FramesSpec {
 }
 
 /// "auto" or a value.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize)]
 #[serde(untagged)]
 pub enum AutoOr<T> {
     Auto(String),
     Value(T),
+}
+
+impl<'de, T: serde::de::DeserializeOwned> Deserialize<'de> for AutoOr<T> {
+    /// A string (checked later to be "auto") or the value; a wrong value says what it
+    /// takes instead of naming a Rust type.
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> std::result::Result<Self, D::Error> {
+        use serde::de::Error as _;
+        let v = toml::Value::deserialize(d)?;
+        match v {
+            toml::Value::String(s) => Ok(AutoOr::Auto(s)),
+            other => {
+                let shown = other.to_string();
+                T::deserialize(other).map(AutoOr::Value).map_err(|e| {
+                    D::Error::custom(format!(
+                        "expected \"auto\" or a value, got {shown}: {}",
+                        e.message()
+                    ))
+                })
+            }
+        }
+    }
 }
 
 impl<T> Default for AutoOr<T> {
@@ -363,9 +384,48 @@ fn finite_positive(file: &str, key: &str, v: f64) -> Result<()> {
     Ok(())
 }
 
+/// The first array in `given` longer than its counterpart in `read`: (key, given, read).
+fn extra_values(
+    given: &toml::Table,
+    read: &toml::Table,
+    prefix: &str,
+) -> Option<(String, usize, usize)> {
+    for (k, g) in given {
+        let key = if prefix.is_empty() {
+            k.clone()
+        } else {
+            format!("{prefix}.{k}")
+        };
+        let Some(r) = read.get(k) else { continue };
+        let found = match (g, r) {
+            (toml::Value::Table(a), toml::Value::Table(b)) => extra_values(a, b, &key),
+            (toml::Value::Array(a), toml::Value::Array(b)) => {
+                if a.len() > b.len() && !b.iter().any(|v| v.is_table()) {
+                    Some((key.clone(), a.len(), b.len()))
+                } else {
+                    a.iter()
+                        .zip(b)
+                        .enumerate()
+                        .find_map(|(i, (x, y))| match (x, y) {
+                            (toml::Value::Table(x), toml::Value::Table(y)) => {
+                                extra_values(x, y, &format!("{key}[{i}]"))
+                            }
+                            _ => None,
+                        })
+                }
+            }
+            _ => None,
+        };
+        if found.is_some() {
+            return found;
+        }
+    }
+    None
+}
+
 /// Parse TOML text read from `path` (errors name the file) and give the folder that relative
 /// paths in it resolve against ("." for a bare file name). Shared by setups and scenarios.
-pub(crate) fn parse_toml<T: serde::de::DeserializeOwned>(
+pub(crate) fn parse_toml<T: serde::de::DeserializeOwned + Serialize>(
     text: &str,
     path: &Path,
 ) -> Result<(T, PathBuf)> {
@@ -373,6 +433,20 @@ pub(crate) fn parse_toml<T: serde::de::DeserializeOwned>(
         file: path.display().to_string(),
         message: e.to_string(),
     })?;
+    // Fixed-size arrays take their first values and drop the rest without a word: compare
+    // every array given with the one read back, and refuse extra values.
+    if let (Ok(given), Ok(toml::Value::Table(read))) =
+        (text.parse::<toml::Table>(), toml::Value::try_from(&value))
+    {
+        extra_values(&given, &read, "").map_or(Ok(()), |(key, n, m)| {
+            Err(Error::setup(
+                path.display().to_string(),
+                key,
+                format!("{n} values"),
+                format!("takes {m} values"),
+            ))
+        })?;
+    }
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
         _ => PathBuf::from("."),

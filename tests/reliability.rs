@@ -216,3 +216,29 @@ fn synth_with_a_million_repeats_is_refused() {
     );
     assert!(out_is_empty(d.path()));
 }
+
+/// Over-long arrays used to be cut silently to their first values.
+#[test]
+fn over_long_arrays_are_refused_naming_the_key() {
+    let ch = "[[channel]]\nname = \"H\"\nmagnification = 40.0\n";
+    for (extra, key) in [
+        ("region = [0, 0, 256, 256, \"junk\"]\n", "channel[0].region"),
+        (
+            "region = [0, 0, 256, 256]\ntilt_mrad = [0.0, 0.0, 5.0]\n",
+            "channel[0].tilt_mrad",
+        ),
+        (
+            "region = [0, 0, 256, 256]\ncarrier = [0.25, 0.1, 0.0]\n",
+            "carrier = [0.25, 0.1, 0.0]",
+        ),
+    ] {
+        let d = tempfile::tempdir().unwrap();
+        std::fs::write(d.path().join("s.toml"), format!("{SETUP}{ch}{extra}")).unwrap();
+        let (code, err) = run(d.path(), &["modes", "s.toml", "--out", "out"]);
+        assert_eq!(code, Some(2), "{extra}: {err}");
+        assert!(
+            err.contains(key) && (err.contains("values") || err.contains("invalid length")),
+            "{extra}: {err}"
+        );
+    }
+}
