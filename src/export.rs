@@ -20,8 +20,55 @@ impl OutDir {
     /// Create the folder (and parents) if needed.
     pub fn create(path: impl Into<PathBuf>, force: bool) -> Result<OutDir> {
         let path = path.into();
+        if path.exists() && !path.is_dir() {
+            return Err(Error::Input(format!(
+                "--out {}: is a file, not a folder; give a folder for the results",
+                path.display()
+            )));
+        }
         std::fs::create_dir_all(&path).map_err(|e| Error::io(&path, e))?;
         Ok(OutDir { path, force })
+    }
+
+    /// A hidden staging folder inside this one, for writing a whole result set before
+    /// [`OutDir::promote`] puts it in place.
+    pub fn stage(&self) -> Result<OutDir> {
+        let p = self.path.join(format!(".staging-{}", std::process::id()));
+        if p.exists() {
+            std::fs::remove_dir_all(&p).map_err(|e| Error::io(&p, e))?;
+        }
+        std::fs::create_dir_all(&p).map_err(|e| Error::io(&p, e))?;
+        Ok(OutDir {
+            path: p,
+            force: true,
+        })
+    }
+
+    /// Move every file of `staged` into this folder (renamed over its target), and remove a
+    /// file of the result set `names` that this run did not produce
+    /// (e.g. calibration.json of an earlier calibrated run) is removed, so the folder never
+    /// mixes two runs. The staging folder is removed.
+    pub fn promote(&self, staged: &OutDir, names: &[&str]) -> Result<()> {
+        let mut written: Vec<std::ffi::OsString> = std::fs::read_dir(&staged.path)
+            .map_err(|e| Error::io(&staged.path, e))?
+            .filter_map(|e| e.ok())
+            .filter(|e| e.path().is_file())
+            .map(|e| e.file_name())
+            .filter(|n| !n.to_string_lossy().starts_with('.'))
+            .collect();
+        written.sort();
+        for n in &written {
+            let dst = self.path.join(n);
+            std::fs::rename(staged.path.join(n), &dst).map_err(|e| Error::io(&dst, e))?;
+        }
+        for n in names {
+            let dst = self.file(n);
+            if dst.exists() && !written.iter().any(|w| w == std::ffi::OsStr::new(n)) {
+                std::fs::remove_file(&dst).map_err(|e| Error::io(&dst, e))?;
+            }
+        }
+        std::fs::remove_dir_all(&staged.path).map_err(|e| Error::io(&staged.path, e))?;
+        Ok(())
     }
 
     /// Path of a file in the folder.

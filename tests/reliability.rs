@@ -242,3 +242,49 @@ fn over_long_arrays_are_refused_naming_the_key() {
         );
     }
 }
+
+/// `run --force --no-calibrate` into a calibrated folder: the earlier calibration.json and
+/// fitted.toml go (they describe other results), the set is complete, no staging is left.
+#[test]
+fn rerun_without_calibration_leaves_no_stale_calibration() {
+    let d = tempfile::tempdir().unwrap();
+    let setup = Path::new(env!("CARGO_MANIFEST_DIR")).join("frames-demo/setup.toml");
+    let s = setup.to_str().unwrap();
+    let (code, err) = run(d.path(), &["run", s, "--out", "out", "-q"]);
+    assert!(code == Some(0) || code == Some(1), "{err}");
+    assert!(d.path().join("out/calibration.json").exists());
+    let (code, err) = run(
+        d.path(),
+        &["run", s, "--out", "out", "--force", "--no-calibrate", "-q"],
+    );
+    assert!(code == Some(0) || code == Some(1), "{err}");
+    let out = d.path().join("out");
+    assert!(!out.join("calibration.json").exists() && !out.join("fitted.toml").exists());
+    assert!(out.join("report.html").exists() && out.join("matrix.npy").exists());
+    let hidden: Vec<_> = std::fs::read_dir(&out)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .filter(|e| e.file_name().to_string_lossy().starts_with('.'))
+        .collect();
+    assert!(hidden.is_empty(), "left behind: {hidden:?}");
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(
+        !html.contains(".staging"),
+        "report names the staging folder"
+    );
+}
+
+/// `--out` naming a file says so in words.
+#[test]
+fn out_naming_a_file_is_explained() {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("s.toml"), SETUP).unwrap();
+    std::fs::write(d.path().join("afile"), "x").unwrap();
+    let (code, err) = run(d.path(), &["modes", "s.toml", "--out", "afile"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(
+        err.contains("afile") && err.contains("is a file, not a folder"),
+        "{err}"
+    );
+    assert!(!err.contains("os error"), "{err}");
+}

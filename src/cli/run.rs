@@ -53,9 +53,9 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     names.extend(pipeline::MATRIX_PICTURES);
     names.extend(field_pics.iter().map(String::as_str));
     names.extend(["check.json", "setup.toml", "report.html", "gallery.png"]);
-    if !args.no_calibrate {
-        names.extend(["calibration.json", "fitted.toml"]);
-    }
+    // calibration.json and fitted.toml belong to the set either way: without a calibration
+    // this run removes an earlier one's (they would describe other results).
+    names.extend(["calibration.json", "fitted.toml"]);
     out.ensure_writable(&names)?;
 
     let basis = Basis::from_setup(&setup)?;
@@ -165,7 +165,10 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
         crate::render::gallery_picture(&sampled, &labels, 0),
     ));
 
-    // 6. Write everything, then the report that reads it back.
+    // 6. Write everything into a staging folder, then the report that reads it back, then
+    // put the whole set in place (an interrupted run leaves the previous set whole).
+    let final_out = out;
+    let out = final_out.stage()?;
     pipeline::write_decode_files(&out, &basis, &d)?;
     write_matrix_files(&out, &analysis)?;
     out.write_json("check.json", &items)?;
@@ -177,8 +180,21 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     for (name, img) in &pictures {
         crate::render::write_png(&out, name, img)?;
     }
-    let html = crate::render::build_report(&out.path)?;
+    // The report names its folder: the final one, not the staging one.
+    let esc = |p: &std::path::Path| crate::render::report::escape(&p.display().to_string());
+    let name = |p: &std::path::Path| {
+        crate::render::report::escape(
+            &p.file_name()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default(),
+        )
+    };
+    let html = crate::render::build_report(&out.path)?
+        .replace(&esc(&out.path), &esc(&final_out.path))
+        .replace(&name(&out.path), &name(&final_out.path));
     out.write_text("report.html", &html)?;
+    final_out.promote(&out, &names)?;
+    let out = final_out;
 
     let mut table = summary_table(&analysis.summary);
     table.push_str(&format!(
