@@ -84,6 +84,12 @@ pub fn layout(setup: &Setup, basis: &Basis, n_frames: usize) -> Result<LaunchLay
 }
 
 /// Assemble and analyse the matrix of a decoded launch sequence.
+/// Sanity problems of a decoded sequence ([`crate::matrix::sanity`]).
+pub fn sequence_problems(setup: &Setup, basis: &Basis, d: &Decoded) -> Result<Vec<String>> {
+    let l = layout(setup, basis, d.coefficients.dim().0)?;
+    Ok(crate::matrix::sequence_problems(d, &l))
+}
+
 pub fn analyse_sequence(setup: &Setup, basis: &Basis, d: &Decoded) -> Result<Analysis> {
     let n_frames = d.coefficients.dim().0;
     let layout = layout(setup, basis, n_frames)?;

@@ -41,11 +41,15 @@ pub fn run(args: &MatrixArgs) -> Result<Outcome> {
     }
     // Check the layout before writing anything.
     let analysis = pipeline::analyse_sequence(&setup, &basis, &d)?;
+    let problems = pipeline::sequence_problems(&setup, &basis, &d)?;
+    for w in &problems {
+        super::warn(args.common.quiet, w);
+    }
     pipeline::write_decode_files(&out, &basis, &d)?;
     write_matrix_files(&out, &analysis)?;
     Ok(Outcome {
         table: summary_table(&analysis.summary),
         json: serde_json::to_value(&analysis.summary).unwrap_or_default(),
-        failed: false,
+        failed: !problems.is_empty(),
     })
 }

@@ -125,6 +125,10 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
         super::warn(q, w);
     }
     let analysis = pipeline::analyse_sequence(&setup, &basis, &d)?;
+    let problems = pipeline::sequence_problems(&setup, &basis, &d)?;
+    for w in &problems {
+        super::warn(q, w);
+    }
 
     // 4. Check the holography with the fitted alignment.
     // The calibration's fields serve the check too (they do not depend on the alignment).
@@ -220,7 +224,7 @@ pub fn run(args: &RunArgs) -> Result<Outcome> {
     Ok(Outcome {
         table,
         json,
-        failed: check_status == Status::Fail,
+        failed: check_status == Status::Fail || !problems.is_empty(),
     })
 }
 
