@@ -120,6 +120,18 @@ pub struct Decision {
     pub gain: Option<f64>,
 }
 
+impl Decision {
+    fn new(parameter: &'static str, fitted: bool, reason: String) -> Decision {
+        Decision {
+            parameter,
+            fitted,
+            reason,
+            statistic: None,
+            gain: None,
+        }
+    }
+}
+
 /// Physical context of a channel.
 #[derive(Debug, Clone, Copy)]
 pub struct FitContext {
@@ -408,66 +420,32 @@ where
     }
 
     let held = |what: &str| format!("held at the setup's value ({what})");
+    let requested = |parameter: &'static str, on: bool| {
+        Decision::new(
+            parameter,
+            on,
+            if on {
+                "fitted".into()
+            } else {
+                held("not requested")
+            },
+        )
+    };
+    let rotation_reason = match spec.rotation {
+        Some(true) => "fitted (requested)".into(),
+        Some(false) => held("not requested"),
+        None if rotation_fitted => "fitted".into(),
+        None => held(
+            "not observable: the basis holds complete degenerate groups, whose captured \
+             power does not depend on rotation",
+        ),
+    };
     let mut decisions = vec![
-        Decision {
-            parameter: "center_um",
-            fitted: spec.center,
-            reason: if spec.center {
-                "fitted".into()
-            } else {
-                held("not requested")
-            },
-            statistic: None,
-            gain: None,
-        },
-        Decision {
-            parameter: "rotation_deg",
-            fitted: rotation_fitted,
-            reason: match spec.rotation {
-                Some(true) => "fitted (requested)".into(),
-                Some(false) => held("not requested"),
-                None if rotation_fitted => "fitted".into(),
-                None => held(
-                    "not observable: the basis holds complete degenerate groups, whose \
-                     captured power does not depend on rotation",
-                ),
-            },
-            statistic: None,
-            gain: None,
-        },
-        Decision {
-            parameter: "scale",
-            fitted: spec.scale,
-            reason: if spec.scale {
-                "fitted".into()
-            } else {
-                held("not requested")
-            },
-            statistic: None,
-            gain: None,
-        },
-        Decision {
-            parameter: "tilt_mrad",
-            fitted: spec.tilt,
-            reason: if spec.tilt {
-                "fitted".into()
-            } else {
-                held("not requested")
-            },
-            statistic: None,
-            gain: None,
-        },
-        Decision {
-            parameter: "defocus_um",
-            fitted: spec.defocus,
-            reason: if spec.defocus {
-                "fitted".into()
-            } else {
-                held("not requested")
-            },
-            statistic: None,
-            gain: None,
-        },
+        requested("center_um", spec.center),
+        Decision::new("rotation_deg", rotation_fitted, rotation_reason),
+        requested("scale", spec.scale),
+        requested("tilt_mrad", spec.tilt),
+        requested("defocus_um", spec.defocus),
     ];
 
     let mut free = Vec::new();
@@ -639,19 +617,18 @@ where
             let p = free[i];
             let v = x_fit[i] * unit(p);
             let by = v - get(start, p);
-            let extra = match p {
-                P::Tx => format!(
-                    " = {:.1} FFT bins of tilt from the start (a carrier that far off: give \
-                     `carrier`)",
-                    by / bin_mrad[0]
-                ),
-                P::Ty => format!(
-                    " = {:.1} FFT bins of tilt from the start (a carrier that far off: give \
-                     `carrier`)",
-                    by / bin_mrad[1]
-                ),
-                _ => String::new(),
+            let axis_bin = match p {
+                P::Tx => Some(bin_mrad[0]),
+                P::Ty => Some(bin_mrad[1]),
+                _ => None,
             };
+            let extra = axis_bin.map_or(String::new(), |bin| {
+                format!(
+                    " = {:.1} FFT bins of tilt from the start (a carrier that far off: give \
+                     `carrier`)",
+                    by / bin
+                )
+            });
             message = format!(
                 "{} ran into its bound {:.4} after the search was widened once ({:+.4} from \
                  the start{extra}); the pattern may be off the grid, or the start is far off",
